@@ -1,0 +1,110 @@
+"""The store's table schemas: the one place they are defined.
+
+The store is a public contract: other engines read these Hive-partitioned Parquet tables
+directly (``<table>/day=YYYY-MM-DD/part-*.parquet``), so a column is never renamed or retyped
+in place. Add columns at the end; never reuse a name with a new meaning.
+
+Integers are signed 64-bit even where the standard field is wider (NVMe counters are 128-bit):
+values beyond 2**63-1 are saturated at that maximum on ingest, which no real drive reaches
+for the counters kept here.
+"""
+
+from __future__ import annotations
+
+import pyarrow as pa
+
+TIMESTAMP = pa.timestamp("us", tz="UTC")
+
+#: Partition key, derived from the row's UTC timestamp; lives in the directory name only.
+PARTITION_COLUMN = "day"
+
+SNAPSHOTS = pa.schema(
+    [
+        ("serial", pa.string()),
+        ("model", pa.string()),
+        ("firmware", pa.string()),
+        ("bus", pa.string()),  # "ata" | "nvme"
+        ("capacity_bytes", pa.int64()),
+        ("rotation_rpm", pa.int32()),  # 0 = solid state, null = not reported
+        ("wwn", pa.string()),  # 16 hex digits (ATA words 108-111); null when absent / NVMe
+        ("host", pa.string()),
+        ("device", pa.string()),
+        ("slot", pa.string()),
+        ("group", pa.string()),
+        ("taken_at", TIMESTAMP),
+        ("power_on_hours", pa.int64()),
+        ("temperature_c", pa.int32()),
+        ("reallocated_sectors", pa.int64()),  # ATA attribute 5
+        ("reallocation_events", pa.int64()),  # ATA attribute 196
+        ("pending_sectors", pa.int64()),  # ATA attribute 197
+        ("offline_uncorrectable", pa.int64()),  # ATA attribute 198
+        ("reported_uncorrectable", pa.int64()),  # ATA attribute 187
+        ("command_timeouts", pa.int64()),  # ATA attribute 188
+        ("crc_errors", pa.int64()),  # ATA attribute 199
+        ("spin_retries", pa.int64()),  # ATA attribute 10
+        ("threshold_tripped", pa.bool_()),  # some attribute with threshold > 0 at/below it
+        ("prefail_tripped", pa.bool_()),  # the same, for a pre-failure attribute
+        ("power_cycles", pa.int64()),  # ATA attribute 12 / NVMe power cycles
+        ("nvme_critical_warning", pa.int32()),  # NVMe log 02h byte 0, bits 0-5
+        ("nvme_spare_pct", pa.int32()),
+        ("nvme_spare_threshold_pct", pa.int32()),
+        ("nvme_used_pct", pa.int32()),
+        ("nvme_media_errors", pa.int64()),
+        ("nvme_unsafe_shutdowns", pa.int64()),
+        ("nvme_error_log_entries", pa.int64()),
+        ("data_written_bytes", pa.int64()),
+        ("source_file", pa.string()),  # capture file name the row came from (provenance)
+    ]
+)
+
+ATTRIBUTES = pa.schema(
+    [
+        ("serial", pa.string()),
+        ("taken_at", TIMESTAMP),
+        ("id", pa.int32()),
+        ("flags", pa.int32()),
+        ("value", pa.int32()),
+        ("worst", pa.int32()),
+        ("threshold", pa.int32()),  # null when the capture had no thresholds sector
+        ("raw", pa.int64()),  # 48-bit raw value, little-endian as stored by the drive
+    ]
+)
+
+REMOVALS = pa.schema(
+    [
+        ("serial", pa.string()),
+        ("removed_at", TIMESTAMP),
+        ("reason", pa.string()),  # see REMOVAL_REASONS
+        ("note", pa.string()),
+        ("source_file", pa.string()),
+    ]
+)
+
+#: Our own words for why a drive left the fleet.
+#:   failed    - it stopped working or was pulled because it was failing
+#:   proactive - pulled on a warning before it failed (counted as a failure by default)
+#:   retired   - left healthy (decommissioned, migrated); a censoring, not an event
+REMOVAL_REASONS = ("failed", "proactive", "retired")
+
+#: table name -> (schema, timestamp column that decides the day partition, dedup key)
+TABLES = {
+    "snapshots": (SNAPSHOTS, "taken_at", ("serial", "taken_at")),
+    "attributes": (ATTRIBUTES, "taken_at", ("serial", "taken_at", "id")),
+    "removals": (REMOVALS, "removed_at", ("serial", "removed_at", "reason")),
+}
+
+#: ATA SMART attribute ids kept as snapshot columns (SFF-8035i ids; meanings are common
+#: practice across vendors, not fixed by the ATA standard).
+ATA_COUNTER_ATTRIBUTES = {
+    5: "reallocated_sectors",
+    10: "spin_retries",
+    12: "power_cycles",
+    187: "reported_uncorrectable",
+    188: "command_timeouts",
+    196: "reallocation_events",
+    197: "pending_sectors",
+    198: "offline_uncorrectable",
+    199: "crc_errors",
+}
+ATA_POWER_ON_HOURS_ID = 9
+ATA_TEMPERATURE_ID = 194
