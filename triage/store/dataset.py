@@ -1,0 +1,293 @@
+"""The Parquet store: atomic commits, de-duplication, partition-pruned reads.
+
+Layout (a public contract; other engines read the tables directly)::
+
+    <root>/snapshots/day=YYYY-MM-DD/part-<batch>.parquet    one row per capture
+    <root>/attributes/day=YYYY-MM-DD/part-<batch>.parquet   one row per ATA attribute per capture
+    <root>/removals/day=YYYY-MM-DD/part-<batch>.parquet     the removal log
+    <root>/quarantine/<batch>.jsonl                         rejected input lines, with reasons
+    <root>/models/                                          fitted models (survival layer)
+    <root>/_manifest.jsonl                                  one line per committed batch
+    <root>/_lock                                            held while a writer runs
+
+How a commit stays atomic: every Parquet file is written under a dot-name (which readers
+skip), flushed to disk, then renamed into place; the manifest line that records the batch and
+its source files is appended last. A crash leaves only whole files visible. Rerunning the same
+input completes the batch: the source files are not in the manifest yet, so they are read again,
+and rows whose key is already stored (``schema.TABLES``) are dropped before writing.
+"""
+
+from __future__ import annotations
+
+import errno
+import fcntl
+import json
+import os
+import secrets
+from contextlib import contextmanager
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Iterable, Iterator, Mapping
+
+import pandas as pd
+import pyarrow as pa
+import pyarrow.dataset as ds
+import pyarrow.parquet as pq
+
+from triage.store.schema import PARTITION_COLUMN, TABLES
+
+MANIFEST = "_manifest.jsonl"
+LOCK = "_lock"
+PARTITIONING = ds.partitioning(pa.schema([(PARTITION_COLUMN, pa.string())]), flavor="hive")
+
+
+class StoreLocked(RuntimeError):
+    """Another process holds the store's writer lock."""
+
+
+@dataclass(frozen=True)
+class SourceRecord:
+    """One input file as the manifest remembers it."""
+
+    path: str
+    sha256: str
+    size: int
+    lines: int = 0
+    stored: int = 0
+    quarantined: int = 0
+
+
+def new_batch_id(now: datetime | None = None) -> str:
+    now = now or datetime.now(timezone.utc)
+    return f"{now:%Y%m%dT%H%M%SZ}-{secrets.token_hex(4)}"
+
+
+class Store:
+    def __init__(self, root: Path | str):
+        self.root = Path(root)
+
+    # -- places ---------------------------------------------------------------------------
+    @property
+    def models_dir(self) -> Path:
+        return self.root / "models"
+
+    @property
+    def quarantine_dir(self) -> Path:
+        return self.root / "quarantine"
+
+    def table_dir(self, table: str) -> Path:
+        _schema_of(table)
+        return self.root / table
+
+    # -- locking --------------------------------------------------------------------------
+    @contextmanager
+    def lock(self, name: str = LOCK) -> Iterator[None]:
+        """Hold an exclusive, non-blocking lock file; raise StoreLocked if another holds it."""
+        self.root.mkdir(parents=True, exist_ok=True)
+        fd = os.open(self.root / name, os.O_RDWR | os.O_CREAT, 0o644)
+        try:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except OSError as exc:
+                if exc.errno in (errno.EAGAIN, errno.EACCES):
+                    raise StoreLocked(f"{self.root / name} is held by another triage run") from None
+                raise
+            os.ftruncate(fd, 0)
+            os.write(fd, f"{os.getpid()}\n".encode())
+            yield
+        finally:
+            os.close(fd)  # closing releases the flock
+
+    # -- manifest -------------------------------------------------------------------------
+    def manifest(self) -> list[dict]:
+        """Committed batches, oldest first. A torn last line (crash mid-append) is ignored."""
+        path = self.root / MANIFEST
+        if not path.exists():
+            return []
+        entries = []
+        for line in path.read_text(encoding="utf-8").splitlines():
+            try:
+                entries.append(json.loads(line))
+            except json.JSONDecodeError:
+                continue
+        return entries
+
+    def ingested_digests(self) -> set[str]:
+        return {f["sha256"] for entry in self.manifest() for f in entry.get("files", [])}
+
+    def _append_manifest(self, entry: dict) -> None:
+        path = self.root / MANIFEST
+        line = json.dumps(entry, sort_keys=True) + "\n"
+        with path.open("a", encoding="utf-8") as fh:
+            # A torn previous line would swallow this one; start on a fresh line.
+            if fh.tell() > 0 and not path.read_bytes().endswith(b"\n"):
+                fh.write("\n")
+            fh.write(line)
+            fh.flush()
+            os.fsync(fh.fileno())
+
+    # -- writing --------------------------------------------------------------------------
+    def append(self, table: str, frame: pd.DataFrame) -> int:
+        """Commit rows of one table (tools and tests); returns the number of new rows."""
+        return self.commit({table: frame})[table]
+
+    def commit(
+        self,
+        frames: Mapping[str, pd.DataFrame],
+        *,
+        sources: Iterable[SourceRecord] = (),
+        quarantine: Iterable[Mapping] = (),
+        batch: str | None = None,
+    ) -> dict[str, int]:
+        """Write a batch atomically (see module docstring); returns new rows per table."""
+        batch = batch or new_batch_id()
+        self.root.mkdir(parents=True, exist_ok=True)
+        written = {}
+        for table, frame in frames.items():
+            written[table] = self._write_table(table, frame, batch)
+        rejected = list(quarantine)
+        if rejected:
+            self._write_quarantine(rejected, batch)
+        self._append_manifest(
+            {
+                "batch": batch,
+                "committed_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+                "files": [s.__dict__ for s in sources],
+                "rows": written,
+                "quarantined": len(rejected),
+            }
+        )
+        return written
+
+    def _write_table(self, table: str, frame: pd.DataFrame, batch: str) -> int:
+        schema, time_column, key = TABLES[table]
+        if frame.empty:
+            return 0
+        arrow = to_arrow(frame, schema)
+        frame = arrow.to_pandas()  # normalised types for the key comparison
+        frame = frame.drop_duplicates(list(key), keep="last")
+        days = frame[time_column].dt.strftime("%Y-%m-%d")
+        written = 0
+        for day, rows in frame.groupby(days, sort=True):
+            rows = self._drop_stored(table, day, rows, key)
+            if rows.empty:
+                continue
+            part_dir = self.table_dir(table) / f"{PARTITION_COLUMN}={day}"
+            part_dir.mkdir(parents=True, exist_ok=True)
+            final = part_dir / f"part-{batch}.parquet"
+            temp = part_dir / f".part-{batch}.parquet.tmp"
+            pq.write_table(to_arrow(rows, schema), temp, compression="zstd")
+            _fsync_file(temp)
+            os.replace(temp, final)
+            _fsync_dir(part_dir)
+            written += len(rows)
+        return written
+
+    def _drop_stored(self, table: str, day: str, rows: pd.DataFrame, key) -> pd.DataFrame:
+        part_dir = self.table_dir(table) / f"{PARTITION_COLUMN}={day}"
+        files = sorted(part_dir.glob("part-*.parquet")) if part_dir.is_dir() else []
+        if not files:
+            return rows
+        schema = _schema_of(table)
+        stored = ds.dataset(files, schema=schema, format="parquet").to_table(columns=list(key))
+        stored_keys = stored.to_pandas().drop_duplicates()
+        merged = rows.merge(stored_keys, on=list(key), how="left", indicator=True)
+        return rows[(merged["_merge"] == "left_only").to_numpy()]
+
+    def _write_quarantine(self, entries: list[Mapping], batch: str) -> None:
+        self.quarantine_dir.mkdir(parents=True, exist_ok=True)
+        final = self.quarantine_dir / f"{batch}.jsonl"
+        temp = self.quarantine_dir / f".{batch}.jsonl.tmp"
+        with temp.open("w", encoding="utf-8") as fh:
+            for entry in entries:
+                fh.write(json.dumps(dict(entry), ensure_ascii=True) + "\n")
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(temp, final)
+
+    # -- reading --------------------------------------------------------------------------
+    def read(
+        self,
+        table: str,
+        columns: list[str] | None = None,
+        since: datetime | None = None,
+        until: datetime | None = None,
+    ) -> pd.DataFrame:
+        """Rows of ``table`` with ``since <= time < until``; only the days in range are opened.
+
+        Timestamps come back tz-aware UTC; integer columns holding nulls come back as float64
+        with NaN (pandas' default), booleans holding nulls as object.
+        """
+        schema, time_column, _ = TABLES[table]
+        wanted = list(columns) if columns is not None else schema.names
+        unknown = [c for c in wanted if c not in schema.names]
+        if unknown:
+            raise KeyError(f"{table} has no column(s) {', '.join(unknown)}")
+        root = self.table_dir(table)
+        if not root.is_dir():
+            return schema.empty_table().select(wanted).to_pandas()
+        full = schema.append(pa.field(PARTITION_COLUMN, pa.string()))
+        dataset = ds.dataset(root, schema=full, format="parquet", partitioning=PARTITIONING)
+        condition = None
+        day = ds.field(PARTITION_COLUMN)
+        stamp = ds.field(time_column)
+        if since is not None:
+            since = _utc(since)
+            condition = (day >= since.strftime("%Y-%m-%d")) & (stamp >= pa.scalar(since, schema.field(time_column).type))
+        if until is not None:
+            until = _utc(until)
+            upper = (day <= until.strftime("%Y-%m-%d")) & (stamp < pa.scalar(until, schema.field(time_column).type))
+            condition = upper if condition is None else condition & upper
+        return dataset.to_table(columns=wanted, filter=condition).to_pandas()
+
+    def days(self, table: str) -> list[str]:
+        """The day partitions present, oldest first."""
+        root = self.table_dir(table)
+        if not root.is_dir():
+            return []
+        prefix = f"{PARTITION_COLUMN}="
+        return sorted(p.name[len(prefix):] for p in root.iterdir() if p.name.startswith(prefix))
+
+
+def to_arrow(frame: pd.DataFrame, schema: pa.Schema) -> pa.Table:
+    """Frame -> table of exactly ``schema``; missing columns become nulls, extra ones are dropped."""
+    arrays = []
+    for field in schema:
+        if field.name in frame.columns:
+            column = frame[field.name]
+            if pa.types.is_timestamp(field.type):
+                column = pd.to_datetime(column, utc=True)
+            arrays.append(pa.array(column, type=field.type, from_pandas=True))
+        else:
+            arrays.append(pa.nulls(len(frame), type=field.type))
+    return pa.Table.from_arrays(arrays, schema=schema)
+
+
+def _schema_of(table: str) -> pa.Schema:
+    try:
+        return TABLES[table][0]
+    except KeyError:
+        raise KeyError(f"unknown table {table!r}; the store has {', '.join(TABLES)}") from None
+
+
+def _utc(moment: datetime) -> datetime:
+    if moment.tzinfo is None:
+        raise ValueError(f"timestamp {moment.isoformat()} has no UTC offset")
+    return moment.astimezone(timezone.utc)
+
+
+def _fsync_file(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
