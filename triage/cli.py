@@ -56,6 +56,39 @@ def fail(message: str, code: Exit = Exit.FAILURE) -> None:
 # -- commands ---------------------------------------------------------------------------------
 # Helpers add their commands above the end marker below, each as one block.
 
+@app.command(
+    epilog="Example: triage ingest /srv/captures/2026-11-30 --store /srv/triage/store",
+)
+def ingest(
+    paths: list[Path] = typer.Argument(..., help="Capture files (.jsonl, .jsonl.gz), removal logs (.csv), or folders of them."),
+    store: Optional[Path] = StoreOption,
+) -> None:
+    """Store capture files and removal logs; bad lines go to quarantine with a reason."""
+    from triage.ingest import ingest_paths
+    from triage.report.console import progress_bar
+    from triage.store.dataset import Store, StoreLocked
+
+    target = Store(resolve_store(store))
+    try:
+        with target.lock(), progress_bar("ingesting files") as progress:
+            report = ingest_paths(target, paths, progress=progress)
+    except (FileNotFoundError, ValueError) as exc:
+        fail(str(exc), Exit.USAGE)
+    except StoreLocked as exc:
+        fail(str(exc), Exit.LOCKED)
+    for rejected in report.rejected[:20]:
+        typer.echo(f"rejected: {rejected}", err=True)
+    if len(report.rejected) > 20:
+        typer.echo(f"rejected: ... {len(report.rejected) - 20} more in {target.quarantine_dir}", err=True)
+    stored = ", ".join(f"{n} {t}" for t, n in sorted(report.stored.items())) or "nothing new"
+    typer.echo(
+        f"ingest: {report.files_read} file(s) read, {report.files_skipped} already stored; "
+        f"stored {stored}; {len(report.rejected)} line(s) quarantined",
+        err=True,
+    )
+    if report.rejected:
+        raise typer.Exit(int(Exit.INPUT_REJECTED))
+
 # -- end of commands --------------------------------------------------------------------------
 
 

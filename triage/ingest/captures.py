@@ -1,0 +1,334 @@
+"""Capture files (JSON Lines, optionally gzip) -> validated columns -> store rows + quarantine.
+
+The input contract is written down in docs/capture-format.md. Per line only the cheap checks run
+in Python (JSON, required fields, timestamp shape, hex length); the byte layouts are decoded for
+the whole batch at once by the vectorised decoders in ``triage.formats``, which is what keeps
+ingest close to the cost of decoding the JSON alone (benchmarks/ingest.py).
+"""
+
+from __future__ import annotations
+
+import gzip
+import json
+import re
+import zlib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from triage.formats.ata_identify import decode_identify_batch
+from triage.formats.ata_smart import decode_smart_batch
+from triage.formats.ata_thresholds import decode_thresholds_batch
+from triage.formats.nvme_health import decode_nvme_health_batch
+from triage.formats.nvme_identify import decode_nvme_identify_batch
+from triage.store.schema import (
+    ATA_COUNTER_ATTRIBUTES,
+    ATA_POWER_ON_HOURS_ID,
+    ATA_TEMPERATURE_ID,
+)
+
+CAPTURE_VERSION = 1
+#: payload name -> byte length, per bus (see docs/capture-format.md)
+PAYLOADS = {
+    "ata": {"identify": 512, "smart": 512, "thresholds": 512},
+    "nvme": {"identify": 4096, "health": 512},
+}
+OPTIONAL_PAYLOADS = {"thresholds"}
+# RFC 3339 section 5.6 date-time: full-date "T" full-time, with a mandatory offset.
+RFC3339 = re.compile(r"\d{4}-\d{2}-\d{2}[Tt ]\d{2}:\d{2}:\d{2}(\.\d+)?([Zz]|[+-]\d{2}:\d{2})\Z")
+INT64_MAX = 2**63 - 1
+NVME_DATA_UNIT_BYTES = 512_000  # NVMe Base Spec 2.0, log 02h: a data unit is 1000 x 512 bytes
+
+
+class LineError(ValueError):
+    def __init__(self, field: str | None, reason: str):
+        super().__init__(reason)
+        self.field = field
+        self.reason = reason
+
+
+@dataclass
+class Rejected:
+    source: str
+    line: int
+    field: str | None
+    reason: str
+    text: str
+
+    def as_record(self) -> dict:
+        return {"source": self.source, "line": self.line, "field": self.field,
+                "reason": self.reason, "text": self.text}
+
+    def __str__(self) -> str:
+        where = f"{self.source}:{self.line}"
+        return f"{where}: {self.field + ': ' if self.field else ''}{self.reason}"
+
+
+@dataclass
+class _Pending:
+    """Lines that passed the per-line checks, by bus, waiting for the batch decode."""
+
+    meta: list[tuple] = field(default_factory=list)  # (source, line, text, host, device, slot, group, taken_at)
+    payloads: dict[str, list[bytes | None]] = field(default_factory=dict)
+
+
+@dataclass
+class CaptureBatch:
+    snapshots: pd.DataFrame
+    attributes: pd.DataFrame
+    rejected: list[Rejected]
+    lines: int
+
+
+def read_lines(path: Path):
+    """Yield (line_number, text); a damaged gzip stream ends the file with a LineError."""
+    opener = gzip.open if path.name.endswith(".gz") else open
+    number = 0
+    try:
+        with opener(path, "rt", encoding="utf-8", errors="strict", newline="\n") as fh:
+            for number, text in enumerate(fh, start=1):
+                yield number, text
+    except (OSError, EOFError, zlib.error, UnicodeDecodeError) as exc:
+        raise LineError(None, f"file unreadable after line {number}: {exc}") from None
+
+
+def check_line(text: str) -> tuple[dict, str]:
+    """The per-line checks of the contract; returns the object and its bus."""
+    try:
+        obj = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise LineError(None, f"bad JSON: {exc.msg} at column {exc.colno}") from None
+    if not isinstance(obj, dict):
+        raise LineError(None, "line is not a JSON object")
+    if obj.get("capture") != CAPTURE_VERSION:
+        raise LineError("capture", f"unsupported capture version {obj.get('capture')!r} (expected 1)")
+    for name in ("host", "device"):
+        value = obj.get(name)
+        if not isinstance(value, str) or not value:
+            raise LineError(name, "missing or not a non-empty string")
+    for name in ("slot", "group"):
+        value = obj.get(name)
+        if value is not None and not isinstance(value, str):
+            raise LineError(name, "must be a string or null")
+    taken_at = obj.get("taken_at")
+    if not isinstance(taken_at, str) or not RFC3339.match(taken_at):
+        raise LineError("taken_at", f"not an RFC 3339 timestamp with offset: {taken_at!r}")
+    bus = obj.get("bus")
+    if bus not in PAYLOADS:
+        raise LineError("bus", f"must be 'ata' or 'nvme', got {bus!r}")
+    return obj, bus
+
+
+def decode_payload(obj: dict, name: str, length: int) -> bytes | None:
+    value = obj.get(name)
+    if value is None:
+        if name in OPTIONAL_PAYLOADS:
+            return None
+        raise LineError(name, "missing")
+    if not isinstance(value, str):
+        raise LineError(name, "must be a hex string")
+    if len(value) != 2 * length:
+        raise LineError(name, f"wrong length: {len(value)} hex digits, expected {2 * length}")
+    try:
+        return bytes.fromhex(value)
+    except ValueError:
+        raise LineError(name, "bad hex") from None
+
+
+def parse_capture_files(paths: list[Path]) -> CaptureBatch:
+    """Read capture files; good lines become store rows, bad ones ``Rejected`` entries."""
+    pending = {bus: _Pending(payloads={n: [] for n in names}) for bus, names in PAYLOADS.items()}
+    rejected: list[Rejected] = []
+    lines = 0
+    for path in paths:
+        source = str(path)
+        number = 0
+        try:
+            for number, text in read_lines(path):
+                lines += 1
+                if not text.strip():
+                    continue
+                try:
+                    obj, bus = check_line(text)
+                    target = pending[bus]
+                    decoded = {n: decode_payload(obj, n, size) for n, size in PAYLOADS[bus].items()}
+                except LineError as exc:
+                    rejected.append(Rejected(source, number, exc.field, exc.reason, text.rstrip("\n")))
+                    continue
+                target.meta.append((source, number, text.rstrip("\n"), obj["host"], obj["device"],
+                                    obj.get("slot"), obj.get("group"), obj["taken_at"]))
+                for name, data in decoded.items():
+                    target.payloads[name].append(data)
+        except LineError as exc:
+            rejected.append(Rejected(source, number + 1, exc.field, exc.reason, ""))
+    snapshots, attributes = [], []
+    for bus, batch in pending.items():
+        if not batch.meta:
+            continue
+        decode = _decode_ata if bus == "ata" else _decode_nvme
+        snap, attrs, bad = decode(batch)
+        rejected.extend(bad)
+        snapshots.append(snap)
+        if attrs is not None:
+            attributes.append(attrs)
+    return CaptureBatch(
+        snapshots=pd.concat(snapshots, ignore_index=True) if snapshots else pd.DataFrame(),
+        attributes=pd.concat(attributes, ignore_index=True) if attributes else pd.DataFrame(),
+        rejected=rejected,
+        lines=lines,
+    )
+
+
+def _stack(chunks: list[bytes | None], length: int) -> np.ndarray:
+    filled = [c if c is not None else bytes(length) for c in chunks]
+    return np.frombuffer(b"".join(filled), dtype=np.uint8).reshape(len(filled), length)
+
+
+def _meta_frame(batch: _Pending, bus: str) -> pd.DataFrame:
+    meta = pd.DataFrame(batch.meta, columns=["source_file", "line", "text", "host", "device",
+                                             "slot", "group", "taken_at"])
+    meta["bus"] = bus
+    meta["taken_at"] = _parse_times(meta["taken_at"])
+    return meta
+
+
+def _parse_times(stamps: pd.Series) -> pd.Series:
+    """RFC 3339 strings (shape already checked) -> UTC; an impossible date becomes NaT."""
+    try:
+        return pd.to_datetime(stamps, utc=True, format="ISO8601")
+    except (ValueError, OverflowError):
+        return stamps.map(lambda s: pd.to_datetime(s, utc=True, format="ISO8601", errors="coerce"))
+
+
+def _reject_rows(meta: pd.DataFrame, mask: np.ndarray, field: str, reason) -> list[Rejected]:
+    out = []
+    for i in np.flatnonzero(mask):
+        why = reason(i) if callable(reason) else reason
+        out.append(Rejected(meta.at[i, "source_file"], int(meta.at[i, "line"]), field, why,
+                            meta.at[i, "text"]))
+    return out
+
+
+def _common_checks(meta: pd.DataFrame, serial: pd.Series) -> tuple[np.ndarray, list[Rejected]]:
+    bad_time = meta["taken_at"].isna().to_numpy()
+    bad_serial = (serial.fillna("").str.len() == 0).to_numpy() & ~bad_time
+    rejected = _reject_rows(meta, bad_time, "taken_at", "not a valid date and time")
+    rejected += _reject_rows(meta, bad_serial, "identify", "serial number is empty")
+    return bad_time | bad_serial, rejected
+
+
+def _decode_ata(batch: _Pending):
+    meta = _meta_frame(batch, "ata")
+    n = len(meta)
+    identity = decode_identify_batch(_stack(batch.payloads["identify"], 512))
+    smart_rows, attrs = decode_smart_batch(_stack(batch.payloads["smart"], 512))
+    has_thresholds = np.array([p is not None for p in batch.payloads["thresholds"]])
+    thr_rows, thresholds = decode_thresholds_batch(_stack(batch.payloads["thresholds"], 512))
+
+    bad, rejected = _common_checks(meta, identity["serial"])
+    checks = [
+        (~identity["integrity_ok"].to_numpy(bool), "identify", "integrity word checksum mismatch (word 255)"),
+        (~smart_rows["checksum_ok"].to_numpy(bool), "smart", "checksum mismatch (byte 511)"),
+        (has_thresholds & ~thr_rows["checksum_ok"].to_numpy(bool), "thresholds", "checksum mismatch (byte 511)"),
+    ]
+    for mask, name, reason in checks:
+        mask = mask & ~bad
+        rejected += _reject_rows(meta, mask, name, reason)
+        bad |= mask
+
+    # Attribute rows with their thresholds (threshold null when the capture had none).
+    thresholds = thresholds[has_thresholds[thresholds["row"].to_numpy()]]
+    attrs = attrs.merge(thresholds, on=["row", "id"], how="left")
+    attrs = attrs[~bad[attrs["row"].to_numpy()]]
+    row = attrs["row"].to_numpy()
+    raw = attrs["raw"].to_numpy(np.int64)
+    ids = attrs["id"].to_numpy()
+
+    snap = pd.DataFrame({
+        "serial": identity["serial"], "model": identity["model"], "firmware": identity["firmware"],
+        "bus": "ata", "capacity_bytes": identity["capacity_bytes"],
+        "rotation_rpm": identity["rotation_rpm"], "wwn": identity["wwn"],
+    })
+    for name in ("host", "device", "slot", "group", "taken_at", "source_file"):
+        snap[name] = meta[name]
+    # Power-on hours: low 32 bits of attribute 9's raw value; some drives keep minutes or
+    # other counts in the upper bytes (common practice, no source).
+    snap["power_on_hours"] = _pick(n, row, ids, raw & 0xFFFFFFFF, ATA_POWER_ON_HOURS_ID)
+    # Temperature: low byte of attribute 194's raw value in degrees Celsius. This is common
+    # practice across vendors, not defined by the ATA standard.
+    snap["temperature_c"] = _pick(n, row, ids, raw & 0xFF, ATA_TEMPERATURE_ID)
+    for attr_id, column in ATA_COUNTER_ATTRIBUTES.items():
+        snap[column] = _pick(n, row, ids, raw, attr_id)
+    snap["threshold_tripped"], snap["prefail_tripped"] = _tripped(n, attrs, has_thresholds)
+
+    good = ~bad
+    snapshots = snap[good].reset_index(drop=True)
+    serial_of = identity["serial"].to_numpy(object)
+    taken_of = meta["taken_at"]
+    attributes = pd.DataFrame({
+        "serial": serial_of[row], "taken_at": taken_of.to_numpy()[row], "id": ids,
+        "flags": attrs["flags"].to_numpy(), "value": attrs["value"].to_numpy(),
+        "worst": attrs["worst"].to_numpy(), "threshold": attrs["threshold"].to_numpy(),
+        "raw": raw,
+    })
+    attributes["taken_at"] = pd.to_datetime(attributes["taken_at"], utc=True)
+    return snapshots, attributes, rejected
+
+
+def _pick(n: int, row: np.ndarray, ids: np.ndarray, values: np.ndarray, attr_id: int) -> pd.Series:
+    """Per capture, the value of one attribute id (null where the drive does not report it)."""
+    mask = ids == attr_id
+    data = np.zeros(n, dtype=np.int64)
+    seen = np.zeros(n, dtype=bool)
+    data[row[mask]] = values[mask]
+    seen[row[mask]] = True
+    out = pd.arrays.IntegerArray(data, ~seen)
+    return pd.Series(out)
+
+
+def _tripped(n: int, attrs: pd.DataFrame, has_thresholds: np.ndarray):
+    """SMART threshold semantics (SFF-8035i; ATA ACS-3 SMART RETURN STATUS): an attribute has
+    crossed its threshold when its normalized value is at or below a non-zero threshold."""
+    threshold = attrs["threshold"].fillna(0).to_numpy(np.int64)
+    crossed = (threshold > 0) & (attrs["value"].to_numpy(np.int64) <= threshold)
+    prefail = crossed & ((attrs["flags"].to_numpy(np.int64) & 1) == 1)
+    row = attrs["row"].to_numpy()
+    any_crossed = np.zeros(n, dtype=bool)
+    any_prefail = np.zeros(n, dtype=bool)
+    any_crossed[row[crossed]] = True
+    any_prefail[row[prefail]] = True
+    unknown = ~has_thresholds
+    return (pd.Series(pd.arrays.BooleanArray(any_crossed, unknown)),
+            pd.Series(pd.arrays.BooleanArray(any_prefail, unknown)))
+
+
+def _decode_nvme(batch: _Pending):
+    meta = _meta_frame(batch, "nvme")
+    identity = decode_nvme_identify_batch(_stack(batch.payloads["identify"], 4096))
+    health = decode_nvme_health_batch(_stack(batch.payloads["health"], 512))
+    bad, rejected = _common_checks(meta, identity["serial"])
+    written = health["data_units_written"].to_numpy(np.int64)
+    # data units of 1000 x 512 bytes; saturate rather than wrap past int64
+    data_written = np.where(written > INT64_MAX // NVME_DATA_UNIT_BYTES, INT64_MAX,
+                            written * NVME_DATA_UNIT_BYTES)
+    snap = pd.DataFrame({
+        "serial": identity["serial"], "model": identity["model"], "firmware": identity["firmware"],
+        "bus": "nvme", "capacity_bytes": identity["total_capacity_bytes"],
+        "rotation_rpm": 0,  # NVMe devices are solid state
+    })
+    for name in ("host", "device", "slot", "group", "taken_at", "source_file"):
+        snap[name] = meta[name]
+    snap["power_on_hours"] = health["power_on_hours"]
+    snap["temperature_c"] = health["composite_temperature_k"].astype("int64") - 273  # kelvin -> Celsius
+    snap["power_cycles"] = health["power_cycles"]
+    snap["nvme_critical_warning"] = health["critical_warning"]
+    snap["nvme_spare_pct"] = health["available_spare_pct"]
+    snap["nvme_spare_threshold_pct"] = health["spare_threshold_pct"]
+    snap["nvme_used_pct"] = health["percentage_used"]
+    snap["nvme_media_errors"] = health["media_errors"]
+    snap["nvme_unsafe_shutdowns"] = health["unsafe_shutdowns"]
+    snap["nvme_error_log_entries"] = health["error_log_entries"]
+    snap["data_written_bytes"] = data_written
+    return snap[~bad].reset_index(drop=True), None, rejected

@@ -1,0 +1,36 @@
+"""Terminal helpers shared by renderers: colour and progress only on a TTY, NO_COLOR respected."""
+
+from __future__ import annotations
+
+import os
+import sys
+from contextlib import contextmanager
+from typing import Callable, Iterator
+
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+
+def stderr_console() -> Console:
+    return Console(stderr=True, no_color=bool(os.environ.get("NO_COLOR")))
+
+
+def stdout_console() -> Console:
+    # rich itself honours NO_COLOR; colour only when stdout is a terminal
+    return Console(no_color=bool(os.environ.get("NO_COLOR")) or not sys.stdout.isatty())
+
+
+@contextmanager
+def progress_bar(label: str) -> Iterator[Callable[[int, int], None]]:
+    """A progress callback ``(done, total)``: a bar on a terminal's stderr, silent elsewhere."""
+    if not sys.stderr.isatty():
+        yield lambda done, total: None
+        return
+    with Progress(TextColumn(label), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
+                  console=stderr_console(), transient=True) as bar:
+        task = bar.add_task(label, total=None)
+
+        def update(done: int, total: int) -> None:
+            bar.update(task, completed=done, total=total)
+
+        yield update
