@@ -89,6 +89,37 @@ def ingest(
     if report.rejected:
         raise typer.Exit(int(Exit.INPUT_REJECTED))
 
+@app.command(
+    epilog="Example: triage demo --seed 7 --drives 1200 --days 120 --work demo-work",
+)
+def demo(
+    seed: int = typer.Option(7, help="Seed of the invented fleet; the same seed gives the same files."),
+    drives: int = typer.Option(1200, min=10, help="Drives in the fleet."),
+    days: int = typer.Option(120, min=2, help="Nightly captures per drive."),
+    work: Path = typer.Option(Path("demo-work"), help="Folder for the capture files and the store."),
+) -> None:
+    """Generate an invented fleet's capture files and ingest them into <work>/store."""
+    from triage.demo import FleetSpec, generate_fleet, write_captures
+    from triage.ingest import ingest_paths
+    from triage.report.console import progress_bar
+    from triage.store.dataset import Store
+
+    typer.echo(f"demo: simulating {drives} drives x {days} nights (seed {seed})", err=True)
+    fleet = generate_fleet(FleetSpec(seed=seed, n_drives=drives, days=days))
+    with progress_bar("writing captures") as progress:
+        files = write_captures(fleet, work / "captures", progress=progress)
+    store = Store(work / "store")
+    with store.lock(), progress_bar("ingesting") as progress:
+        report = ingest_paths(store, files, progress=progress)
+    typer.echo(
+        f"demo: {len(files)} files, {report.stored.get('snapshots', 0)} captures and "
+        f"{report.stored.get('removals', 0)} removals stored in {store.root}",
+        err=True,
+    )
+    if report.rejected:
+        raise typer.Exit(int(Exit.INPUT_REJECTED))
+
+
 # -- end of commands --------------------------------------------------------------------------
 
 

@@ -74,9 +74,11 @@ def clean_ascii_columns(block: np.ndarray) -> np.ndarray:
     plain = (block >= 0x20) & (block <= 0x7E) & (block != 0x5C)
     trailing_nul = np.logical_and.accumulate((block == 0)[:, ::-1], axis=1)[:, ::-1]
     fast = (plain | trailing_nul).all(axis=1)
+    out = np.empty(n, dtype=object)
+    plain_rows = np.ascontiguousarray(block[fast])
     # An 'S' view drops trailing NULs; then only space padding is left to strip.
-    text = np.char.strip(block.view(f"S{width}").reshape(n).astype(f"U{width}"), " ")
-    out = text.astype(object)
+    text = plain_rows.view(f"S{width}").reshape(len(plain_rows)).astype(f"U{width}")
+    out[fast] = np.char.strip(text, " ").astype(object)
     for i in np.flatnonzero(~fast):
         out[i] = clean_ascii(block[i].tobytes())
     return out

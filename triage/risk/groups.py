@@ -1,0 +1,234 @@
+"""Redundancy groups: the chance a group loses more members than it tolerates, and degraded groups.
+
+Drives that share a ``group`` value (a RAID set, an erasure-coded pool, a mirror) are judged
+together: one weak drive in a healthy double-parity group is an errand, two weak drives in a
+single-parity group are an emergency. See docs/ranking.md.
+
+Group loss probability
+----------------------
+Members fail independently with their own probabilities ``p_1 .. p_n`` over the rebuild window;
+the number of failures ``X`` then follows the Poisson-binomial distribution. The group loses data
+when ``X > t`` (``t`` = members it can lose, 1 for single parity / two-way mirror, 2 for double
+parity). ``P(X > t)`` is computed exactly with the standard recurrence over members
+(Poisson-binomial by dynamic programming; e.g. Chen & Liu, "Statistical applications of the
+Poisson-binomial and conditional Bernoulli distributions", Statistica Sinica 7, 1997, sec. 2)::
+
+    P_0(k) = [k == 0]
+    P_j(k) = P_{j-1}(k) * (1 - p_j) + P_{j-1}(k - 1) * p_j
+
+keeping only ``k = 0 .. t`` and one bucket for "more than t", so it costs O(n * t).
+
+Per-member probability over the rebuild window
+----------------------------------------------
+From the fitted model we know ``p_H`` = P(fail within the horizon of H days). Assuming a constant
+hazard across the horizon, the probability over a window of ``w`` days is::
+
+    p_w = 1 - (1 - p_H) ** (w / H)
+
+Rules add evidence the model may not see (a drive with growing pending sectors is read end to end
+during a rebuild and will likely return read errors, which the group counts against its
+tolerance). Each severity carries a prior probability of failing during a rebuild
+(``SEVERITY_REBUILD_PRIOR``: common practice, no source; deliberately coarse). Model and prior
+are combined as independent causes: ``p = 1 - (1 - p_w) * (1 - prior)``.
+
+Group configuration (our own format, ``groups.toml`` in a rules directory or ``--group-config``)::
+
+    [[group]]
+    pattern = "*-dp-*"      # fnmatch pattern on the group name; the first match wins
+    tolerance = 2           # members the group can lose without losing data
+    rebuild_hours = 36      # how long a rebuild leaves it exposed
+
+Groups matching no pattern get ``DEFAULT_TOLERANCE`` and ``DEFAULT_REBUILD_HOURS``.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Iterable, Sequence
+
+import pandas as pd
+
+#: Single parity / two-way mirror: the most common layout, so the cautious default.
+DEFAULT_TOLERANCE = 1
+#: A day to rebuild a large HDD member: common practice, no source.
+DEFAULT_REBUILD_HOURS = 24.0
+
+#: P(member fails or returns read errors during a rebuild) by worst rule severity.
+#: Common practice, no source: coarse steps chosen so flagged drives dominate healthy ones.
+SEVERITY_REBUILD_PRIOR = {
+    "replace-now": 0.5,
+    "replace-soon": 0.2,
+    "watch": 0.05,
+    "check-path": 0.01,  # the path, not the media: a small chance the drive is at fault after all
+    None: 0.0,
+}
+
+GROUP_CONFIG_FILE = "groups.toml"
+
+
+# -- the distribution -------------------------------------------------------------------------
+def prob_more_than(probabilities: Iterable[float], tolerance: int) -> float:
+    """P(X > tolerance) for X = number of independent Bernoulli(p_i) successes (exact DP, O(n*t))."""
+    if tolerance < 0:
+        return 1.0  # the group is already past what it can lose
+    # dist[k] = P(exactly k failures so far) for k <= t; dist[t + 1] = P(more than t)
+    dist = [1.0] + [0.0] * (tolerance + 1)
+    for p in probabilities:
+        p = float(p)
+        if not 0.0 <= p <= 1.0:
+            raise ValueError(f"member probability {p} is not within [0, 1]")
+        q = 1.0 - p
+        over = dist[tolerance + 1] + dist[tolerance] * p  # once past t, it stays past t
+        for k in range(tolerance, 0, -1):
+            dist[k] = dist[k] * q + dist[k - 1] * p
+        dist[0] = dist[0] * q
+        dist[tolerance + 1] = over
+    return dist[tolerance + 1]
+
+
+def window_probability(p_horizon: float, horizon_days: float, window_days: float) -> float:
+    """p_w = 1 - (1 - p_H) ** (w / H): the horizon probability rescaled under a constant hazard."""
+    if horizon_days <= 0:
+        raise ValueError(f"horizon_days must be positive, got {horizon_days}")
+    return 1.0 - (1.0 - float(p_horizon)) ** (window_days / horizon_days)
+
+
+def member_probability(p_window: float | None, severity: str | None) -> float:
+    """Model and rule evidence as independent causes: 1 - (1 - p_w) * (1 - prior(severity))."""
+    prior = SEVERITY_REBUILD_PRIOR.get(severity, 0.0)
+    model = 0.0 if p_window is None or pd.isna(p_window) else float(p_window)
+    return 1.0 - (1.0 - model) * (1.0 - prior)
+
+
+# -- configuration ----------------------------------------------------------------------------
+@dataclass(frozen=True)
+class GroupRule:
+    pattern: str
+    tolerance: int = DEFAULT_TOLERANCE
+    rebuild_hours: float = DEFAULT_REBUILD_HOURS
+
+
+@dataclass(frozen=True)
+class GroupConfig:
+    rules: tuple[GroupRule, ...] = field(default_factory=tuple)
+
+    def for_group(self, group: str) -> GroupRule:
+        for rule in self.rules:
+            if fnmatch.fnmatchcase(group, rule.pattern):
+                return rule
+        return GroupRule(pattern="*")
+
+    @classmethod
+    def load(cls, path: Path) -> "GroupConfig":
+        """Read a groups.toml; a bad entry raises ValueError naming the file and entry."""
+        try:
+            data = tomllib.loads(Path(path).read_text(encoding="utf-8"))
+        except tomllib.TOMLDecodeError as exc:
+            raise ValueError(f"{path}: not valid TOML: {exc}") from None
+        entries = data.get("group", [])
+        if not isinstance(entries, list):
+            raise ValueError(f"{path}: 'group' must be an array of tables ([[group]])")
+        rules = []
+        for number, entry in enumerate(entries, start=1):
+            where = f"{path}: group entry {number}"
+            if not isinstance(entry, dict) or not isinstance(entry.get("pattern"), str):
+                raise ValueError(f"{where}: needs a string 'pattern'")
+            unknown = set(entry) - {"pattern", "tolerance", "rebuild_hours"}
+            if unknown:
+                raise ValueError(f"{where}: unknown field(s) {', '.join(sorted(unknown))}")
+            tolerance = entry.get("tolerance", DEFAULT_TOLERANCE)
+            if not isinstance(tolerance, int) or isinstance(tolerance, bool) or tolerance < 0:
+                raise ValueError(f"{where}: field 'tolerance' must be a whole number >= 0")
+            hours = entry.get("rebuild_hours", DEFAULT_REBUILD_HOURS)
+            if not isinstance(hours, (int, float)) or isinstance(hours, bool) or hours <= 0:
+                raise ValueError(f"{where}: field 'rebuild_hours' must be a positive number")
+            rules.append(GroupRule(entry["pattern"], tolerance, float(hours)))
+        return cls(tuple(rules))
+
+    @classmethod
+    def find(cls, rules_dirs: Sequence[Path], explicit: Path | None = None) -> "GroupConfig":
+        """``explicit`` if given, else the first groups.toml found in the rules directories."""
+        if explicit is not None:
+            return cls.load(explicit)
+        for folder in rules_dirs:
+            candidate = Path(folder) / GROUP_CONFIG_FILE
+            if candidate.is_file():
+                return cls.load(candidate)
+        return cls()
+
+
+# -- degraded groups --------------------------------------------------------------------------
+def lost_members(snapshots: pd.DataFrame, removals: pd.DataFrame) -> pd.DataFrame:
+    """Members each group has lost and not replaced, from recent captures and the removal log.
+
+    ``snapshots`` holds recent captures (serial, host, slot, group, taken_at). A member is lost when
+
+    * it was seen in the group but is absent from the group's latest capture night (the newest
+      day any member of the group was captured), unless it was removed as ``retired``; or
+    * it was removed as ``failed`` or ``proactive`` after it was last seen in the group,
+
+    and in both cases no other serial has appeared in its host/slot since it was last seen.
+    Returns columns group, serial, host, slot, last_seen.
+    """
+    columns = ["group", "serial", "host", "slot", "last_seen"]
+    frame = snapshots.dropna(subset=["group"])
+    if frame.empty:
+        return pd.DataFrame(columns=columns)
+    frame = frame.assign(night=frame["taken_at"].dt.floor("D"))
+    last = frame.sort_values("taken_at").groupby(["group", "serial"], as_index=False).last()
+    group_night = frame.groupby("group")["night"].max()
+    absent = last["night"] < last["group"].map(group_night)
+
+    removed = removals.sort_values("removed_at").groupby("serial").last() if len(removals) else None
+    reason = last["serial"].map(removed["reason"]) if removed is not None else pd.Series(None, index=last.index)
+    removed_at = last["serial"].map(removed["removed_at"]) if removed is not None else pd.Series(pd.NaT, index=last.index)
+    failed_after = reason.isin(["failed", "proactive"]) & (removed_at >= last["taken_at"])
+    candidates = last[(absent & (reason != "retired")) | failed_after]
+
+    # a replacement: another serial first seen in the same host/slot after the lost one's last sighting
+    first_seen = frame.groupby(["host", "slot", "serial"], as_index=False)["taken_at"].min()
+    keep = []
+    for row in candidates.itertuples(index=False):
+        same_slot = first_seen[(first_seen["host"] == row.host) & (first_seen["slot"] == row.slot)
+                               & (first_seen["serial"] != row.serial)]
+        keep.append(not (same_slot["taken_at"] > row.taken_at).any() or pd.isna(row.slot))
+    lost = candidates[keep] if len(candidates) else candidates
+    return lost.rename(columns={"taken_at": "last_seen"})[columns].reset_index(drop=True)
+
+
+# -- the group table --------------------------------------------------------------------------
+def group_risk(members: pd.DataFrame, lost: pd.DataFrame, config: GroupConfig) -> tuple[pd.DataFrame, pd.Series]:
+    """Loss probability per group and each member's share of it.
+
+    ``members``: current members, columns serial, group, p_member (probability over the group's
+    rebuild window, see ``member_probability``). ``lost``: from ``lost_members``.
+
+    Returns (groups, member_importance):
+      groups: group, members, lost, tolerance, tolerance_left, rebuild_hours, p_group_loss, degraded
+      member_importance: per serial, P(group loss) - P(group loss if this member were replaced by a
+        healthy drive) = p_i * P(the other members fail exactly tolerance_left times). It is what
+        replacing this drive buys the group, and it is what lifts two weak drives in one group above
+        a lone weak drive.
+    """
+    rows, importance = [], {}
+    lost_count = lost.groupby("group").size() if len(lost) else pd.Series(dtype=int)
+    for group, part in members.dropna(subset=["group"]).groupby("group", sort=True):
+        rule = config.for_group(str(group))
+        n_lost = int(lost_count.get(group, 0))
+        left = rule.tolerance - n_lost
+        p = part["p_member"].astype(float).tolist()
+        p_loss = prob_more_than(p, left)
+        for i, serial in enumerate(part["serial"]):
+            without = p[:i] + [0.0] + p[i + 1:]
+            importance[serial] = p_loss - prob_more_than(without, left)
+        rows.append({
+            "group": group, "members": len(part), "lost": n_lost, "tolerance": rule.tolerance,
+            "tolerance_left": left, "rebuild_hours": rule.rebuild_hours,
+            "p_group_loss": p_loss, "degraded": n_lost > 0,
+        })
+    columns = ["group", "members", "lost", "tolerance", "tolerance_left", "rebuild_hours",
+               "p_group_loss", "degraded"]
+    return pd.DataFrame(rows, columns=columns), pd.Series(importance, dtype=float)
