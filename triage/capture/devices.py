@@ -4,7 +4,8 @@ Enumeration looks at ``/sys/block/sd*`` (SCSI disks, SATA drives among them) and
 ``/sys/class/nvme/nvme*`` (NVMe controllers), and leaves out what is not a local drive:
 
 * partitions (a ``partition`` attribute), which share their disk's health;
-* virtual devices (resolved sysfs path under ``/devices/virtual/``: loop, ram, dm-, md, zram);
+* virtual devices: loop, ram, dm-, md, zram never match ``sd*``; anything else whose resolved
+  sysfs path lies under ``/devices/virtual/`` is left out too;
 * removable devices (``removable`` = 1) and disks with no medium (``size`` = 0);
 * SCSI disks whose INQUIRY vendor is not ``ATA``: a SCSI / ATA translation layer reports "ATA"
   there (SAT-4, INQUIRY data translation, from memory), so anything else is a SAS or USB
@@ -29,7 +30,6 @@ _SCSI_DISK = re.compile(r"^sd[a-z]+$")
 _SCSI_GENERIC = re.compile(r"^sg\d+$")
 _NVME_CONTROLLER = re.compile(r"^nvme\d+$")
 _NVME_NAMESPACE = re.compile(r"^nvme\d+n\d+$")
-_VIRTUAL_NAMES = re.compile(r"^(loop|ram|dm-|md|zram|nbd|vd)")
 
 
 @dataclass(frozen=True)
@@ -91,7 +91,7 @@ def enumerate_targets(sysfs: Path = SYSFS, dev: str = DEV) -> tuple[list[Target]
         if not _SCSI_DISK.match(name):
             continue  # NVMe namespaces come in through their controller; the rest is not ours
         node = f"{dev}/{name}"
-        reason = _scsi_disk_exclusion(block / name, name)
+        reason = _scsi_disk_exclusion(block / name)
         if reason:
             skipped.append(Skipped(node, reason))
         else:
@@ -117,10 +117,10 @@ def enumerate_targets(sysfs: Path = SYSFS, dev: str = DEV) -> tuple[list[Target]
     return ata + nvme, skipped
 
 
-def _scsi_disk_exclusion(entry: Path, name: str) -> str | None:
+def _scsi_disk_exclusion(entry: Path) -> str | None:
     if (entry / "partition").exists():
         return "partition"
-    if _VIRTUAL_NAMES.match(name) or "/virtual/" in str(entry.resolve()):
+    if "/virtual/" in str(entry.resolve()):
         return "virtual device"
     if _read(entry / "removable") == "1":
         return "removable device"

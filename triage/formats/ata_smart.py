@@ -117,7 +117,8 @@ def check_checksum(data: bytes, field: str) -> None:
     remainder = sum(data) % 256
     if remainder:
         raise LayoutError(
-            field, f"the 512 bytes sum to {remainder:#04x} mod 256, not 0 (byte 511 is the checksum)"
+            field,
+            f"the 512 bytes sum to {remainder:#04x} mod 256, not 0 (byte 511 is the checksum)",
         )
 
 

@@ -230,6 +230,8 @@ def _decode_ata(batch: _Pending):
     bad, rejected = _common_checks(meta, identity["serial"])
     checks = [
         (~identity["integrity_ok"].to_numpy(bool), "identify", "integrity word checksum mismatch (word 255)"),
+        (identity["problem"].eq("identify.logical_sector_size").to_numpy(bool), "identify",
+         "logical sector size in words 117-118 is under 512 bytes"),
         (~smart_rows["checksum_ok"].to_numpy(bool), "smart", "checksum mismatch (byte 511)"),
         (has_thresholds & ~thr_rows["checksum_ok"].to_numpy(bool), "thresholds", "checksum mismatch (byte 511)"),
     ]

@@ -182,10 +182,10 @@ def lost_members(snapshots: pd.DataFrame, removals: pd.DataFrame) -> pd.DataFram
     group_night = frame.groupby("group")["night"].max()
     absent = last["night"] < last["group"].map(group_night)
 
-    removed = removals.sort_values("removed_at").groupby("serial").last() if len(removals) else None
-    reason = last["serial"].map(removed["reason"]) if removed is not None else pd.Series(None, index=last.index)
-    removed_at = last["serial"].map(removed["removed_at"]) if removed is not None else pd.Series(pd.NaT, index=last.index)
-    failed_after = reason.isin(["failed", "proactive"]) & (removed_at >= last["taken_at"])
+    removed = removals.sort_values("removed_at").groupby("serial").last()
+    reason = last["serial"].map(removed["reason"])
+    removed_at = pd.to_datetime(last["serial"].map(removed["removed_at"]), utc=True)
+    failed_after = reason.isin(["failed", "proactive"]) & (removed_at >= pd.to_datetime(last["taken_at"], utc=True))
     candidates = last[(absent & (reason != "retired")) | failed_after]
 
     # a replacement: another serial first seen in the same host/slot after the lost one's last sighting

@@ -113,12 +113,11 @@ def rank_drives(
     drives["p_member"] = p_member
     groups, importance = group_risk(drives[["serial", "group", "p_member"]], lost, config)
 
-    by_group = groups.set_index("group") if len(groups) else None
+    by_group = groups.set_index("group")
     drives["group_importance"] = drives["serial"].map(importance).fillna(0.0)
-    drives["p_group_loss"] = drives["group"].map(by_group["p_group_loss"]) if by_group is not None else float("nan")
-    degraded = drives["group"].map(by_group["degraded"]) if by_group is not None else None
-    drives["degraded"] = degraded.fillna(False).astype(bool) if degraded is not None else False
-    lost_n = drives["group"].map(by_group["lost"]).fillna(0).astype(int) if by_group is not None else 0
+    drives["p_group_loss"] = drives["group"].map(by_group["p_group_loss"]).astype(float)
+    drives["degraded"] = drives["group"].map(by_group["degraded"]).eq(True)
+    lost_n = drives["group"].map(by_group["lost"]).fillna(0).astype(int)
     drives["score"] = [
         risk_score(SEVERITY_WEIGHT.get(s, 0.0), p, g)
         for s, p, g in zip(drives["severity"], drives["p_fail"], drives["group_importance"])
@@ -126,7 +125,7 @@ def rank_drives(
     drives["action"] = [
         action_text(s, c, d, g, n)
         for s, c, d, g, n in zip(drives["severity"], drives["category"], drives["degraded"],
-                                 drives["group"], lost_n if not isinstance(lost_n, int) else [0] * len(drives))
+                                 drives["group"], lost_n)
     ]
     hours = drives["power_on_hours"] if "power_on_hours" in drives else pd.Series(float("nan"), index=drives.index)
     drives["power_on_hours"] = hours

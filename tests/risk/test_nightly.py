@@ -1,0 +1,55 @@
+"""The nightly run: one at a time, exit codes cron can act on."""
+
+from __future__ import annotations
+
+from types import SimpleNamespace
+
+import pandas as pd
+import pytest
+
+from triage.exitcodes import Exit
+from triage.risk.nightly import NIGHTLY_LOCK, run_nightly
+from triage.risk.rank import RankResult, rank_drives
+from triage.store.dataset import Store, StoreLocked
+
+LATEST = pd.DataFrame({"serial": ["QN1"], "model": ["Corvid NV1920"], "host": ["cedar-r1-n02"],
+                       "slot": ["nvme0"], "group": [None], "power_on_hours": [5000]})
+
+
+def _rank_with(flagged):
+    def rank(store, ruleset, config=None):
+        flags = pd.DataFrame([(s, "media-errors", "replace-soon", "media", "t", "media errors 0 -> 3") for s in flagged],
+                             columns=["serial", "rule_id", "severity", "category", "title", "evidence"])
+        drives, groups = rank_drives(LATEST, flags, None)
+        return RankResult(drives, groups, False, None, None, ["rules alone"])
+    return rank
+
+
+def _ingest(rejected=0):
+    return lambda store, paths: SimpleNamespace(files_read=1, new_rows=5, rejected=["x"] * rejected)
+
+
+def _run(tmp_path, flagged, rejected=0):
+    return run_nightly(Store(tmp_path / "store"), tmp_path, tmp_path / "t.csv", ruleset=None,
+                       ingest=_ingest(rejected), rank=_rank_with(flagged), refit=lambda s: None)
+
+
+def test_second_run_while_one_holds_the_lock_is_refused(tmp_path):
+    store = Store(tmp_path / "store")
+    with store.lock(NIGHTLY_LOCK):
+        with pytest.raises(StoreLocked, match="held by another"):
+            _run(tmp_path, ["QN1"])
+
+
+def test_new_flag_then_nothing_new_then_rejected_input(tmp_path):
+    assert _run(tmp_path, ["QN1"]).exit == Exit.NEW_FLAGS
+    assert _run(tmp_path, ["QN1"]).exit == Exit.OK  # same ticket, ongoing
+    # rejected input outranks new flags (lower code wins, exitcodes.py)
+    assert _run(tmp_path, [], rejected=2).exit == Exit.INPUT_REJECTED
+
+
+def test_summary_line_names_counts_and_exit(tmp_path):
+    report = _run(tmp_path, ["QN1"])
+    assert report.refitted  # no saved model yet: refit due
+    line = report.summary()
+    assert "1 new / 0 ongoing / 0 cleared tickets" in line and "NEW_FLAGS" in line

@@ -1,0 +1,87 @@
+"""Ticket export: stable keys, states across nights, formula-injection cells, RFC 4180 output."""
+
+from __future__ import annotations
+
+import csv
+from datetime import datetime, timezone
+
+import pandas as pd
+
+from triage.risk.rank import rank_drives
+from triage.risk.tickets import export_tickets, neutralise, read_tickets, ticket_key, to_csv_text
+
+LATEST = pd.DataFrame({
+    "serial": ["QA1", "QA2", "QA3"], "model": ["QH-HD8T-A"] * 3, "host": ["ash-r1-n01"] * 3,
+    "slot": ["1", "2", "3"], "group": [None] * 3, "power_on_hours": [100, 100, 100],
+})
+
+
+def _ranked(flagged):
+    flags = pd.DataFrame(
+        [(s, "pending-growth", "replace-soon", "media", "pending growing", "pending 0 -> 24 in 3 days") for s in flagged],
+        columns=["serial", "rule_id", "severity", "category", "title", "evidence"])
+    return rank_drives(LATEST, flags, None)[0]
+
+
+def _night(day):
+    return datetime(2026, 11, day, 3, tzinfo=timezone.utc)
+
+
+def test_same_drive_and_reason_give_the_same_key():
+    assert ticket_key("QA1", "media") == ticket_key("QA1", "media")
+    assert ticket_key("QA1", "media") != ticket_key("QA1", "check-path")
+    assert ticket_key("QA1", "media") != ticket_key("QA2", "media")
+
+
+def test_states_across_three_nights(tmp_path):
+    out = tmp_path / "tickets.csv"
+    # night 1: QA1 and QA2 flagged -> both new
+    t1, c1 = export_tickets(_ranked(["QA1", "QA2"]), out, as_of=_night(1))
+    assert dict(zip(t1["serial"], t1["state"])) == {"QA1": "new", "QA2": "new"}
+    # night 2: QA1 still, QA2 gone, QA3 appears
+    t2, c2 = export_tickets(_ranked(["QA1", "QA3"]), out, as_of=_night(2))
+    assert dict(zip(t2["serial"], t2["state"])) == {"QA1": "ongoing", "QA3": "new", "QA2": "cleared"}
+    assert (c2.new, c2.ongoing, c2.cleared) == (1, 1, 1)
+    # night 3: QA1 and QA3 still; QA2's cleared ticket is not repeated; QA1 keeps its first night
+    t3, c3 = export_tickets(_ranked(["QA1", "QA3"]), out, as_of=_night(3))
+    assert dict(zip(t3["serial"], t3["state"])) == {"QA1": "ongoing", "QA3": "ongoing"}
+    assert t3.set_index("serial").loc["QA1", "first_flagged"] == "2026-11-01"
+    assert set(read_tickets(out)["key"]) == set(t3["key"])
+
+
+def test_flag_returning_after_clearing_is_new_again(tmp_path):
+    out = tmp_path / "tickets.csv"
+    export_tickets(_ranked(["QA1"]), out, as_of=_night(1))
+    export_tickets(_ranked([]), out, as_of=_night(2))
+    t3, _ = export_tickets(_ranked(["QA1"]), out, as_of=_night(3))
+    assert list(t3["state"]) == ["new"]
+
+
+def test_formula_cells_are_neutralised():
+    # OWASP "CSV Injection": prefix cells starting with = + - @ TAB CR with a single quote.
+    for cell in ["=HYPERLINK(\"x\")", "+1", "-2+3", "@SUM(A1)", "\tx", "\rx"]:
+        assert neutralise(cell) == "'" + cell
+    assert neutralise("QH-HD8T-A") == "QH-HD8T-A"
+
+
+def test_firmware_formula_serial_survives_export_neutralised_and_reads_back(tmp_path):
+    latest = LATEST.assign(serial=["=cmd|'/c calc'!A0", "QA2", "QA3"])
+    flags = pd.DataFrame([("=cmd|'/c calc'!A0", "r", "watch", "media", "t", "e")],
+                         columns=["serial", "rule_id", "severity", "category", "title", "evidence"])
+    out = tmp_path / "t.csv"
+    export_tickets(rank_drives(latest, flags, None)[0], out, as_of=_night(1))
+    with out.open(newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert rows[0]["serial"] == "'=cmd|'/c calc'!A0"
+    assert read_tickets(out).loc[0, "serial"] == "=cmd|'/c calc'!A0"
+
+
+def test_export_is_rfc4180_with_crlf_and_quoted_commas(tmp_path):
+    # RFC 4180 sec. 2: records end in CRLF; fields holding commas or quotes are double-quoted,
+    # with an inner quote doubled.
+    ranked = _ranked(["QA1"])
+    ranked.at[0, "evidence"] = ['pending 0 -> 24, "fast"']
+    from triage.risk.tickets import current_tickets
+    text = to_csv_text(current_tickets(ranked, _night(1)))
+    assert text.count("\r\n") == 2 and "\n" not in text.replace("\r\n", "")
+    assert '"pending 0 -> 24, ""fast"""' in text

@@ -1,0 +1,135 @@
+"""Survival and cumulative hazard against age, with delayed entry; hazard by age band.
+
+Kaplan-Meier with left truncation (Klein & Moeschberger, Survival Analysis, 2nd ed., 4.6):
+
+    S(t) = prod_{t_i <= t} (1 - d_i / Y_i)        Y_i = #{drives with entry < t_i <= exit}
+
+and Nelson-Aalen, H(t) = sum_{t_i <= t} d_i / Y_i. The risk set Y_i holds only drives already in
+the fleet at age t_i, which is the whole point: a drive installed at 20,000 h is not "at risk"
+at 5,000 h. Both come from lifelines (``entry=``); the intervals are lifelines' pointwise 95 %
+ones (log(-log) transform for S, log transform for H), not simultaneous bands.
+
+The curve starts at 1 at the youngest entry age: with delayed entry it estimates survival
+*conditional on reaching that age*. Where few drives are at risk (young ages in a fleet bought
+second-hand, the oldest ages everywhere) it is noisy; the ``at_risk`` column says so.
+
+Hazard by age band (a piecewise-constant hazard, the maximum-likelihood estimate under left
+truncation and right censoring):
+
+    h_band = failures in band / drive-hours at risk in band
+
+reported per year (x 8766 h) with Garwood limits (``afr.py``), like an AFR restricted to the band.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from triage.survival.afr import HOURS_PER_YEAR, garwood_limits
+
+MONTH_HOURS = HOURS_PER_YEAR / 12
+#: (label, from_hours, to_hours): infant mortality, first year, then yearly to the usual
+#: 5-year service life (band edges are common practice, no source).
+AGE_BANDS = (
+    ("0-3 months", 0.0, 3 * MONTH_HOURS),
+    ("3-12 months", 3 * MONTH_HOURS, HOURS_PER_YEAR),
+    ("1-2 years", HOURS_PER_YEAR, 2 * HOURS_PER_YEAR),
+    ("2-3 years", 2 * HOURS_PER_YEAR, 3 * HOURS_PER_YEAR),
+    ("3-5 years", 3 * HOURS_PER_YEAR, 5 * HOURS_PER_YEAR),
+    ("5 years+", 5 * HOURS_PER_YEAR, np.inf),
+)
+
+
+@dataclass
+class Curves:
+    """Survival / cumulative hazard at each failure age (plus the first age), ready to print."""
+
+    table: pd.DataFrame  # age_hours, survival, survival_low, survival_high, at_risk, failures,
+    #                     cumulative_hazard, cumulative_hazard_low, cumulative_hazard_high
+    youngest_entry_hours: float
+
+
+def survival_curves(entry_hours, exit_hours, event, alpha: float = 0.05) -> Curves:
+    """Kaplan-Meier and Nelson-Aalen with delayed entry (lifelines), at each failure age."""
+    from lifelines import KaplanMeierFitter, NelsonAalenFitter
+
+    entry = np.asarray(entry_hours, dtype=float)
+    exit_ = np.asarray(exit_hours, dtype=float)
+    event = np.asarray(event, dtype=bool)
+    keep = exit_ > entry
+    entry, exit_, event = entry[keep], exit_[keep], event[keep]
+    columns = ["age_hours", "survival", "survival_low", "survival_high", "at_risk", "failures",
+               "cumulative_hazard", "cumulative_hazard_low", "cumulative_hazard_high"]
+    if len(entry) == 0:
+        return Curves(pd.DataFrame(columns=columns), float("nan"))
+    km = KaplanMeierFitter(alpha=alpha).fit(exit_, event, entry=entry)
+    na = NelsonAalenFitter(alpha=alpha).fit(exit_, event, entry=entry)
+    events = km.event_table
+    # lifelines' table counts entries at an age as at risk at that age; rows where someone
+    # failed are the only ages where the curves move.
+    ages = events.index[events["observed"].to_numpy() > 0].to_numpy(dtype=float)
+    start = float(entry.min())
+    ages = np.concatenate([[start], ages[ages > start]])
+    survival = km.survival_function_.iloc[:, 0].reindex(ages, method="ffill").fillna(1.0)
+    band = km.confidence_interval_.reindex(ages, method="ffill")
+    cumhaz = na.cumulative_hazard_.iloc[:, 0].reindex(ages, method="ffill").fillna(0.0)
+    cumhaz_band = na.confidence_interval_.reindex(ages, method="ffill")
+    at_risk = events["at_risk"].reindex(ages, method="ffill").fillna(0)
+    failures = events["observed"].reindex(ages).fillna(0)
+    table = pd.DataFrame({
+        "age_hours": ages,
+        "survival": survival.to_numpy(),
+        "survival_low": band.iloc[:, 0].fillna(1.0).to_numpy(),
+        "survival_high": band.iloc[:, 1].fillna(1.0).to_numpy(),
+        "at_risk": at_risk.to_numpy(dtype=np.int64),
+        "failures": failures.to_numpy(dtype=np.int64),
+        "cumulative_hazard": cumhaz.to_numpy(),
+        "cumulative_hazard_low": cumhaz_band.iloc[:, 0].fillna(0.0).to_numpy(),
+        "cumulative_hazard_high": cumhaz_band.iloc[:, 1].fillna(0.0).to_numpy(),
+    })
+    return Curves(table=table[columns], youngest_entry_hours=start)
+
+
+def exposure_in_bands(entry_hours, exit_hours, event, edges) -> tuple[np.ndarray, np.ndarray]:
+    """Drive-hours at risk and failures in each age band ``[edges[j], edges[j+1])``.
+
+    A drive contributes ``overlap((entry, exit], band)`` hours to a band, and its failure (at
+    its exit age) to the band holding that age.
+    """
+    entry = np.asarray(entry_hours, dtype=float)
+    exit_ = np.asarray(exit_hours, dtype=float)
+    event = np.asarray(event, dtype=bool)
+    edges = np.asarray(edges, dtype=float)
+    lo, hi = edges[:-1], edges[1:]
+    overlap = np.clip(np.minimum(exit_[:, None], hi[None, :]) - np.maximum(entry[:, None], lo[None, :]), 0, None)
+    hours = overlap.sum(axis=0)
+    # failure at exactly a band edge belongs to the band it ends (interval (lo, hi])
+    band_of_failure = np.searchsorted(edges, exit_[event], side="left") - 1
+    band_of_failure = np.clip(band_of_failure, 0, len(lo) - 1)
+    failures = np.bincount(band_of_failure, minlength=len(lo))
+    return hours, failures
+
+
+def hazard_by_age_band(entry_hours, exit_hours, event, bands=AGE_BANDS, alpha: float = 0.05) -> pd.DataFrame:
+    """Piecewise-constant hazard per age band, annualized (percent per year), with Garwood limits."""
+    edges = [b[1] for b in bands] + [bands[-1][2]]
+    hours, failures = exposure_in_bands(entry_hours, exit_hours, event, edges)
+    low, high = garwood_limits(failures, alpha)
+    years = hours / HOURS_PER_YEAR
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rate = np.where(years > 0, failures / years, np.nan)
+        rate_low = np.where(years > 0, low / years, np.nan)
+        rate_high = np.where(years > 0, high / years, np.nan)
+    return pd.DataFrame({
+        "band": [b[0] for b in bands],
+        "age_from_hours": [b[1] for b in bands],
+        "age_to_hours": [b[2] for b in bands],
+        "drive_days": hours / 24.0,
+        "failures": failures.astype(np.int64),
+        "hazard": 100 * rate,
+        "hazard_low": 100 * rate_low,
+        "hazard_high": 100 * rate_high,
+    })
