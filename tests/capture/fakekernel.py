@@ -49,7 +49,7 @@ def fixed_sense(sense_key: int, asc: int, ascq: int, ata_error: int = 0, ata_sta
     """Fixed format sense (SPC-4 §4.5.3, response code 70h, 18 bytes); ATA ERROR / STATUS in
     INFORMATION bytes 3 and 4 (SAT-5 table 212)."""
     sense = bytearray(18)
-    sense[0] = 0x70
+    sense[0] = 0xF0 if (ata_error or ata_status) else 0x70  # VALID: the INFORMATION field is set
     sense[2] = sense_key
     sense[3] = ata_error
     sense[4] = ata_status

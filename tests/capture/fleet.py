@@ -108,6 +108,7 @@ NVME = [
 ]
 
 
-def drives(**faults_by_device) -> dict[str, FakeDrive]:
-    """The whole host; ``faults_by_device={"/dev/sdb": {"smart": ...}}`` plants failures."""
-    return {t.device: t.drive(**faults_by_device.get(t.device, {})) for t in [*ATA, *NVME]}
+def drives(faults: dict[str, dict[str, object]] | None = None) -> dict[str, FakeDrive]:
+    """The whole host; ``faults={"/dev/sdb": {"smart": ...}}`` plants failures."""
+    faults = faults or {}
+    return {t.device: t.drive(**faults.get(t.device, {})) for t in [*ATA, *NVME]}

@@ -50,8 +50,11 @@ ALLOWED: frozenset[Command] = frozenset(
 _ALLOWED_REQUESTS: frozenset[tuple[str, bytes, int]] = frozenset((c.bus, c.request, c.length) for c in ALLOWED)
 
 
-class CommandRefused(PermissionError):
-    """Something tried to send a command outside the allow-list (a bug, never a drive problem)."""
+class CommandRefused(RuntimeError):
+    """Something tried to send a command outside the allow-list (a bug, never a drive problem).
+
+    Deliberately not an ``OSError``: it must never be mistaken for a device error and swallowed
+    by the per-device error handling."""
 
 
 def require_allowed(bus: str, request: bytes, length: int) -> None:
@@ -68,7 +71,7 @@ class Failure(Enum):
 
     NOT_SUPPORTED = "not supported"
     ABORTED = "command aborted"
-    GONE = "device gone"
+    GONE = "device not present"
     NOT_READY = "not ready"
     MEDIUM_ERROR = "medium error"
     HARDWARE_ERROR = "hardware error"
@@ -120,7 +123,7 @@ def issue(io: "DeviceIO", handle: "Handle", command: Command) -> bytes:
             return data
         if outcome is not Outcome.RETRY or attempt == RETRIES:
             break
-    if command.name == "SMART READ DATA" and outcome is Outcome.ABORTED:
+    if command == SMART_READ_DATA and outcome is Outcome.ABORTED:
         detail += "; the drive aborts SMART reads while SMART is disabled"
     raise DeviceError(command.name, _FAILURE_OF_OUTCOME[outcome], detail)
 

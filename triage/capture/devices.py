@@ -60,15 +60,9 @@ def bus_of(path: str) -> str:
     )
 
 
-def targets_for(paths: list[str]) -> tuple[list[Target], list[Skipped]]:
-    """Exactly the named devices; names that are not drives come back as skipped."""
-    targets, skipped = [], []
-    for path in paths:
-        try:
-            targets.append(Target(path, bus_of(path)))
-        except ValueError as exc:
-            skipped.append(Skipped(path, str(exc).split(": ", 1)[1]))
-    return targets, skipped
+def targets_for(paths: list[str]) -> list[Target]:
+    """Exactly the named devices, in the order given; ValueError for a name that is not a drive."""
+    return [Target(path, bus_of(path)) for path in paths]
 
 
 def _read(path: Path) -> str | None:

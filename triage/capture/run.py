@@ -103,8 +103,10 @@ def capture_file_name(host: str, when: datetime) -> str:
 
 
 def rfc3339_utc(moment: datetime) -> str:
-    """RFC 3339 §5.6 date-time in UTC with the "Z" offset, whole seconds."""
-    return moment.astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    """RFC 3339 §5.6 date-time in UTC with the "Z" offset; microseconds (time-secfrac) when the
+    clock has them, so two reads of one drive within a second stay in order."""
+    utc = moment.astimezone(timezone.utc)
+    return utc.isoformat(timespec="microseconds" if utc.microsecond else "seconds").replace("+00:00", "Z")
 
 
 def _utc_now() -> datetime:

@@ -136,7 +136,7 @@ class Sense:
     def describe(self) -> str:
         """One line for an operator: names from SPC-4, hex codes always shown."""
         key = SENSE_KEYS[self.sense_key]
-        text = f"sense key {self.sense_key:x}h {key}, ASC/ASCQ {self.asc:02x}h/{self.ascq:02x}h"
+        text = f"sense key {self.sense_key:X}h {key}, ASC/ASCQ {self.asc:02X}h/{self.ascq:02X}h"
         name = ADDITIONAL_SENSE.get((self.asc, self.ascq))
         if name:
             text += f" {name}"
@@ -166,9 +166,12 @@ def _decode_fixed(sense: bytes, response_code: int) -> Sense:
         raise SenseError(f"fixed format sense data too short ({len(sense)} bytes)")
     sense_key = sense[2] & 0x0F
     ata = None
-    # The ATA registers are only present when the INFORMATION field was filled in (bytes 3-6);
-    # SAT-5 tables 212 / 213.
-    if len(sense) >= 12:
+    # The ATA registers are present when the INFORMATION field is marked valid (byte 0 bit 7,
+    # SPC-4) or the code says so (00h/1Dh); SAT-5 tables 212 / 213 give their places. Without
+    # either, bytes 3-11 belong to the target (an LBA, or nothing) and are not ATA registers.
+    asc, ascq = _byte(sense, 12), _byte(sense, 13)
+    information_valid = bool(sense[0] & 0x80) or (asc, ascq) == (0x00, 0x1D)
+    if len(sense) >= 12 and information_valid:
         flags = sense[8]
         ata = AtaRegisters(
             error=sense[3],
@@ -178,7 +181,7 @@ def _decode_fixed(sense: bytes, response_code: int) -> Sense:
             lba=sense[9] | (sense[10] << 8) | (sense[11] << 16),
             extend=bool(flags & 0x80),
         )
-    return Sense(response_code, sense_key, _byte(sense, 12), _byte(sense, 13), ata)
+    return Sense(response_code, sense_key, asc, ascq, ata)
 
 
 def _decode_descriptor(sense: bytes, response_code: int) -> Sense:

@@ -16,8 +16,6 @@ from triage.capture.sense import Outcome, Sense, SenseError, classify, decode_se
 SG_IO = 0x2285  # <scsi/sg.h>
 SG_INTERFACE_ID = ord("S")  # interface_id: 'S' for SCSI generic, required
 SG_DXFER_FROM_DEV = -3  # <scsi/sg.h>: "e.g. a SCSI READ command"
-SG_INFO_OK_MASK = 0x1
-SG_INFO_OK = 0x0
 
 SENSE_BUFFER_BYTES = 64  # descriptor sense with an ATA Status Return descriptor needs 22
 DEFAULT_TIMEOUT_MS = 20_000  # common practice, no source: generous for a drive spinning up

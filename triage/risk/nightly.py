@@ -83,8 +83,11 @@ def run_nightly(
             if refit is None:
                 report.notes.append("refit due but the survival layer has no fit_and_save(); model kept")
             else:
-                refit(store)
-                report.refitted = True
+                try:
+                    refit(store)
+                    report.refitted = True
+                except ValueError as exc:  # e.g. no failures yet: rank on rules alone, say so
+                    report.notes.append(f"refit skipped: {exc}")
         result = rank(store, ruleset, config=config)
         report.notes += result.notes
         report.ranked = len(result.drives)

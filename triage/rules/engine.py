@@ -43,7 +43,7 @@ DAY_NS = 86_400 * 10**9
 FLAG_COLUMNS = ["serial", "rule_id", "severity", "category", "title", "evidence", "taken_at"]
 
 #: Columns of ``per_drive`` (one row per drive with at least one firing).
-DRIVE_COLUMNS = ["serial", "severity", "category", "replace", "rule_ids", "evidence", "action", "taken_at"]
+DRIVE_COLUMNS = ["serial", "severity", "category", "replace_drive", "rule_ids", "evidence", "action", "taken_at"]
 
 
 @dataclass(frozen=True)
@@ -108,32 +108,31 @@ class DriveHistory:
         return pd.Series(pd.to_datetime(self.times[self.latest], utc=True), index=self.serials)
 
     # -- columns ------------------------------------------------------------------------------
+    def _series(self, name: str) -> pd.Series:
+        if name not in self._history.columns:
+            raise ValueError(f"history lacks column '{name}' that a rule reads")
+        return self._history[name]
+
     def column(self, name: str) -> tuple[np.ndarray, np.ndarray]:
-        """(values, known) of a field for every sorted capture row."""
+        """(values, known) of a numeric field for every sorted capture row."""
         if name not in self._columns:
-            if name not in self._history.columns:
-                raise ValueError(f"history lacks column '{name}' that a rule reads")
-            series = self._history[name]
-            kind = FIELDS[name]
-            if kind == Kind.NUMBER:
-                values = pd.to_numeric(series, errors="coerce").to_numpy(dtype="float64", na_value=np.nan)
-                values = values[self._rows]
-                known = ~np.isnan(values)
-            else:
-                raw = series.to_numpy(dtype=object)[self._rows]
-                known = pd.notna(raw).astype(bool)
-                if kind == Kind.BOOL:
-                    values = np.where(known, raw, False).astype(bool)
-                else:
-                    values = np.where(known, raw, None).astype(object)
-            self._columns[name] = (values, known)
+            series = pd.to_numeric(self._series(name), errors="coerce")
+            values = series.to_numpy(dtype="float64", na_value=np.nan)[self._rows]
+            self._columns[name] = (values, ~np.isnan(values))
         return self._columns[name]
 
     def current(self, name: str) -> Vec:
-        values, known = self.column(name)
-        if self.n_drives == 0:
-            return Vec(FIELDS[name], values[:0], known[:0])
-        return Vec(FIELDS[name], values[self.latest], known[self.latest])
+        """A field's value at each drive's latest capture."""
+        kind = FIELDS[name]
+        if kind == Kind.NUMBER:
+            values, known = self.column(name)
+            return Vec(kind, values[self.latest], known[self.latest])
+        # true/false and text fields are never windowed: read only the latest rows
+        raw = self._series(name).to_numpy(dtype=object)[self._rows[self.latest]]
+        known = pd.notna(raw).astype(bool)
+        if kind == Kind.BOOL:
+            return Vec(kind, np.where(known, raw, False).astype(bool), known)
+        return Vec(kind, np.where(known, raw, None).astype(object), known)
 
     def track(self, name: str) -> _Track:
         if name not in self._tracks:
@@ -141,7 +140,7 @@ class DriveHistory:
             valued = np.flatnonzero(known)
             codes = self.codes[valued]
             drives = np.arange(self.n_drives)
-            latest_known = known[self.latest] if self.n_drives else np.zeros(0, dtype=bool)
+            latest_known = known[self.latest]
             self._tracks[name] = _Track(
                 values=values[valued],
                 times=self.times[valued],
@@ -222,8 +221,9 @@ class DriveHistory:
             return Vec(Kind.NUMBER, track.values[index], valid)
         rising = np.ones(self.n_drives, dtype=bool)
         for k in range(n):
-            here = np.where(valid, last - k, 1)
-            rising &= track.values[here] > track.values[here - 1]
+            here = np.where(valid, last - k, 0)
+            before = np.where(valid, here - 1, 0)
+            rising &= track.values[here] > track.values[before]
         return Vec(Kind.BOOL, rising, valid)
 
     def bit_value(self, name: str, position: int) -> Vec:
@@ -396,13 +396,13 @@ def per_drive(flags: pd.DataFrame) -> pd.DataFrame:
     """Collapse ``evaluate``'s output to one row per drive (``DRIVE_COLUMNS``), most urgent first.
 
     ``severity``/``category``/``action`` are those of the drive's most severe firing;
-    ``replace`` is true when that severity calls for replacing the drive (check-path and watch
+    ``replace_drive`` is true when that severity calls for replacing the drive (check-path and watch
     do not); ``rule_ids`` and ``evidence`` list every firing, most severe first, joined by
     ", " and "; ".
     """
     if flags.empty:
         frame = pd.DataFrame({c: pd.Series(dtype=object) for c in DRIVE_COLUMNS})
-        frame["replace"] = pd.Series(dtype=bool)
+        frame["replace_drive"] = pd.Series(dtype=bool)
         return frame
     ranked = flags.assign(_rank=flags["severity"].map(lambda s: Severity(s).rank))
     ranked = ranked.sort_values(["_rank"], ascending=False, kind="stable")
@@ -415,7 +415,7 @@ def per_drive(flags: pd.DataFrame) -> pd.DataFrame:
         taken_at=("taken_at", "first"),
         _rank=("_rank", "first"),
     ).reset_index()
-    drives["replace"] = drives["severity"].map(lambda s: Severity(s).replaces_drive).astype(bool)
+    drives["replace_drive"] = drives["severity"].map(lambda s: Severity(s).replaces_drive).astype(bool)
     drives["action"] = drives["severity"].map(lambda s: Severity(s).action)
     drives = drives.sort_values(["_rank", "serial"], ascending=[False, True], kind="stable")
     return drives[DRIVE_COLUMNS].reset_index(drop=True)

@@ -13,24 +13,25 @@ from triage.rules.template import Template
 
 
 class Severity(str, Enum):
-    """How urgent a firing is, most urgent first.
+    """How strongly a firing points at replacing the drive, strongest first.
 
-    ``check-path`` ranks above ``watch`` because it asks for work now (on the cable, backplane
-    slot or controller port), but it is not a replacement severity: ``replaces_drive`` is false,
-    and a drive whose only firings are ``check-path`` is not a candidate for replacement.
+    replace-now > replace-soon > watch > check-path. ``check-path`` comes last because it points
+    away from the drive: the fault is in the cable, backplane slot or controller port, and work
+    is due there, not on the drive. Only the first two have ``replaces_drive``. (The risk layer
+    orders severities the same way.)
     """
 
     REPLACE_NOW = "replace-now"
     REPLACE_SOON = "replace-soon"
-    CHECK_PATH = "check-path"
     WATCH = "watch"
+    CHECK_PATH = "check-path"
 
     def __str__(self) -> str:
         return self.value
 
     @property
     def rank(self) -> int:
-        """Higher is more urgent: replace-now 4, replace-soon 3, check-path 2, watch 1."""
+        """Higher points more at replacing: replace-now 4, replace-soon 3, watch 2, check-path 1."""
         return _RANK[self]
 
     @property
@@ -65,8 +66,8 @@ class Severity(str, Enum):
 _RANK = {
     Severity.REPLACE_NOW: 4,
     Severity.REPLACE_SOON: 3,
-    Severity.CHECK_PATH: 2,
-    Severity.WATCH: 1,
+    Severity.WATCH: 2,
+    Severity.CHECK_PATH: 1,
 }
 
 _ACTION = {

@@ -66,7 +66,8 @@ def survival_curves(entry_hours, exit_hours, event, alpha: float = 0.05) -> Curv
     if len(entry) == 0:
         return Curves(pd.DataFrame(columns=columns), float("nan"))
     km = KaplanMeierFitter(alpha=alpha).fit(exit_, event, entry=entry)
-    na = NelsonAalenFitter(alpha=alpha).fit(exit_, event, entry=entry)
+    # the classic estimator d/Y at tied ages (lifelines would otherwise split ties as 1/Y + 1/(Y-1) ...)
+    na = NelsonAalenFitter(alpha=alpha, nelson_aalen_smoothing=False).fit(exit_, event, entry=entry)
     events = km.event_table
     # lifelines' table counts entries at an age as at risk at that age; rows where someone
     # failed are the only ages where the curves move.

@@ -397,9 +397,11 @@ def _clean_removals(removals: pd.DataFrame, until) -> pd.DataFrame:
 def _per_drive(rows: pd.DataFrame, by) -> pd.DataFrame:
     """First and latest snapshot of each drive (rows are sorted by serial, taken_at)."""
     if rows.empty:
-        columns = ["serial", *COHORT_COLUMNS, "cohort", "first_taken_at", "last_taken_at", "entry_hours",
-                   "last_hours", *COVARIATE_SOURCES, *FEATURES]
-        return pd.DataFrame(columns=columns)
+        columns = {"serial": object, "cohort": object, "first_taken_at": "datetime64[ns, UTC]",
+                   "entry_hours": float, **{c: object for c in COHORT_COLUMNS},
+                   "last_taken_at": "datetime64[ns, UTC]", "last_hours": float,
+                   **{c: float for c in (*COVARIATE_SOURCES, *FEATURES)}}
+        return pd.DataFrame({c: pd.Series(dtype=t) for c, t in columns.items()})
     serial = rows["serial"].to_numpy()
     is_first = np.ones(len(rows), dtype=bool)
     is_first[1:] = serial[1:] != serial[:-1]
@@ -423,6 +425,12 @@ def _per_drive(rows: pd.DataFrame, by) -> pd.DataFrame:
 def _attach_removals(drives: pd.DataFrame, removals: pd.DataFrame, count_proactive: bool):
     """Exit time, exit age and event of each drive from the removal log."""
     problems: dict[str, str] = {}
+    if drives.empty:
+        empty = drives.assign(removal_reason=pd.Series(dtype=object),
+                              exit_at=pd.Series(dtype="datetime64[ns, UTC]"),
+                              exit_hours=pd.Series(dtype=float), drive_days=pd.Series(dtype=float),
+                              event=pd.Series(dtype=bool))
+        return empty, problems
     unknown = removals[~removals["reason"].isin(KNOWN_REASONS)]
     for serial, reason in zip(unknown["serial"], unknown["reason"]):
         problems.setdefault(serial, f"removal reason {reason!r} is not one of {', '.join(KNOWN_REASONS)}")

@@ -1,0 +1,109 @@
+"""The rank / tickets / nightly commands, run for real over a small hand-built store.
+
+The rules layer is replaced by a stand-in (one rule: pending sectors grew) so these tests pin
+down the commands' wiring, not the rule engine.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+from types import SimpleNamespace
+
+import pandas as pd
+import pytest
+from typer.testing import CliRunner
+
+import triage.rules
+import triage.survival
+from triage.cli import app
+from triage.exitcodes import Exit
+from triage.risk.nightly import NIGHTLY_LOCK
+from triage.store.dataset import Store
+
+
+def _stand_in_evaluate(ruleset, history, now=None):
+    rows = []
+    for serial, part in history.sort_values("taken_at").groupby("serial"):
+        first, last = part["pending_sectors"].iloc[0], part["pending_sectors"].iloc[-1]
+        if last > first:
+            rows.append((serial, "pending-growth", "replace-now", "media", "pending sectors grew",
+                         f"pending {first:g} -> {last:g} in {len(part) - 1} days"))
+    return pd.DataFrame(rows, columns=["serial", "rule_id", "severity", "category", "title", "evidence"])
+
+
+@pytest.fixture
+def store(tmp_path, monkeypatch):
+    monkeypatch.setattr(triage.rules, "load_rules",
+                        lambda dirs, include_defaults=True: SimpleNamespace(rules=[], errors=[], window_days=3),
+                        raising=False)
+    monkeypatch.setattr(triage.rules, "evaluate", _stand_in_evaluate, raising=False)
+    monkeypatch.setattr(triage.survival, "latest_model", lambda store: None, raising=False)
+    rows = []
+    for day in (1, 2, 3, 4):
+        for i, serial in enumerate(["=QZ-0001", "QZ-0002", "QZ-0003"]):
+            rows.append({"serial": serial, "model": "QH-[b]8T" if serial == "=QZ-0001" else "QH-HD8T-A", "host": "ash-r1-n01", "slot": str(i),
+                         "group": "ash-pool-1", "taken_at": pd.Timestamp(f"2026-11-{day:02d}T02:00Z"),
+                         "power_on_hours": 9000 + 24 * day,
+                         "pending_sectors": (8 * day if serial == "=QZ-0001" else 0)})
+    s = Store(tmp_path / "store")
+    s.append("snapshots", pd.DataFrame(rows))
+    return s
+
+
+def _run(*args):
+    return CliRunner().invoke(app, list(args))
+
+
+def test_rank_json_lists_the_flagged_drive_first_and_says_rules_alone(store):
+    result = _run("rank", "--format", "json", "--store", str(store.root))
+    assert result.exit_code == 0, result.output
+    rows = json.loads(result.stdout)
+    assert rows[0]["serial"] == "=QZ-0001" and rows[0]["rules"] == ["pending-growth"]
+    assert rows[0]["evidence"] == ["pending 8 -> 32 in 3 days"]
+    assert rows[0]["p_fail"] is None
+    assert {"rank", "serial", "model", "host", "slot", "group", "score", "p_fail", "severity",
+            "category", "action", "rules", "evidence"} <= set(rows[0])
+    assert "rules alone" in result.stderr
+
+
+def test_rank_table_escapes_firmware_strings(store, monkeypatch):
+    monkeypatch.setenv("COLUMNS", "250")
+    result = _run("rank", "--top", "1", "--store", str(store.root))
+    assert result.exit_code == 0, result.output
+    # unescaped, rich would take "[b]" as markup and drop it from the model name
+    assert "QH-[b]8T" in result.stdout and "=QZ-0001" in result.stdout
+    assert "pending 8 -> 32" in result.stdout
+
+
+def test_rank_refuses_an_unknown_format(store):
+    result = _run("rank", "--format", "xml", "--store", str(store.root))
+    assert result.exit_code == Exit.USAGE
+
+
+def test_tickets_writes_new_then_ongoing(store, tmp_path):
+    out = tmp_path / "tickets.csv"
+    first = _run("tickets", "--out", str(out), "--store", str(store.root))
+    assert first.exit_code == Exit.NEW_FLAGS, first.output
+    second = _run("tickets", "--out", str(out), "--store", str(store.root))
+    assert second.exit_code == Exit.OK, second.output
+    with out.open(newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert [(r["serial"], r["state"]) for r in rows] == [("'=QZ-0001", "ongoing")]
+
+
+def test_nightly_refuses_to_run_while_another_holds_the_lock(store, tmp_path):
+    dumps = tmp_path / "dumps"
+    dumps.mkdir()
+    with store.lock(NIGHTLY_LOCK):
+        result = _run("nightly", "--dumps", str(dumps), "--out", str(tmp_path / "t.csv"), "--store", str(store.root))
+    assert result.exit_code == Exit.LOCKED
+    assert "held by another triage run" in result.stderr
+
+
+def test_nightly_reports_new_flags_and_a_summary_line(store, tmp_path):
+    dumps = tmp_path / "dumps"
+    dumps.mkdir()
+    result = _run("nightly", "--dumps", str(dumps), "--out", str(tmp_path / "t.csv"), "--store", str(store.root))
+    assert result.exit_code == Exit.NEW_FLAGS, result.output
+    assert "nightly: 0 file(s) read" in result.stderr and "1 new / 0 ongoing / 0 cleared" in result.stderr

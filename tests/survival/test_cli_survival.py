@@ -1,0 +1,115 @@
+"""The fit / cohorts / survival commands, run for real over a small simulated store."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+
+import pytest
+from typer.testing import CliRunner
+
+from tests.survival.fleetsim import simulate_fleet
+from triage.cli import app
+from triage.exitcodes import Exit
+from triage.store.dataset import Store
+from triage.survival import latest_model
+from triage.survival.cohorts import COHORT_KEYS
+
+runner = CliRunner()
+
+
+@pytest.fixture(scope="module")
+def store_root(tmp_path_factory):
+    root = tmp_path_factory.mktemp("store")
+    snapshots, removals, _ = simulate_fleet(n_drives=500, days=70, seed=13, scale_hours=25_000)
+    store = Store(root)
+    store.append("snapshots", snapshots)
+    store.append("removals", removals)
+    return root
+
+
+def run(*args):
+    return runner.invoke(app, [*args])
+
+
+def test_cohorts_json_is_a_list_of_objects_with_exactly_the_contract_keys(store_root):
+    result = run("cohorts", "--format", "json", "--store", str(store_root))
+    assert result.exit_code == Exit.OK, result.output
+    rows = json.loads(result.stdout)
+    assert [row["cohort"] for row in rows] == ["QH-HD8T-A", "Tallow 14T"]
+    for row in rows:
+        assert list(row)[: len(COHORT_KEYS)] == list(COHORT_KEYS)
+        assert row["afr_low"] <= row["afr"] <= row["afr_high"]
+
+
+def test_cohorts_csv_parses_as_rfc4180_with_a_header(store_root):
+    result = run("cohorts", "--format", "csv", "--by", "model,capacity_bytes", "--store", str(store_root))
+    assert result.exit_code == Exit.OK, result.output
+    text = result.stdout_bytes.decode()  # raw bytes: the runner's .stdout folds CRLF to LF
+    assert text.endswith("\r\n") and text.count("\r\n") == 3  # RFC 4180 section 2: CRLF line breaks
+    rows = list(csv.DictReader(io.StringIO(text, newline="")))
+    assert [r["cohort"] for r in rows] == ["QH-HD8T-A / 8 TB", "Tallow 14T / 14 TB"]
+    assert set(COHORT_KEYS) <= set(rows[0])
+
+
+def test_cohorts_with_mttf_show_the_datasheet_afr(store_root):
+    result = run("cohorts", "--format", "json", "--mttf", "1000000", "--store", str(store_root))
+    rows = json.loads(result.stdout)
+    # Schroeder & Gibson, FAST 2007, section 2: 1,000,000 h MTTF is about 0.88 % AFR
+    assert all(0.87 <= row["datasheet_afr"] <= 0.88 for row in rows)
+
+
+def test_cohorts_table_names_every_cohort(store_root):
+    result = run("cohorts", "--store", str(store_root))
+    assert result.exit_code == Exit.OK
+    assert "QH-HD8T-A" in result.stdout and "Tallow 14T" in result.stdout
+
+
+def test_unknown_cohort_key_is_a_usage_error(store_root):
+    result = run("cohorts", "--by", "slot", "--store", str(store_root))
+    assert result.exit_code == Exit.USAGE
+    assert "cohort keys must be among" in result.output
+
+
+def test_survival_json_has_the_curve_and_age_bands(store_root):
+    result = run("survival", "Tallow 14T", "--format", "json", "--store", str(store_root))
+    assert result.exit_code == Exit.OK, result.output
+    report = json.loads(result.stdout)
+    assert {"age_hours", "survival", "survival_low", "survival_high", "at_risk"} <= set(report["curve"][0])
+    assert [b["band"] for b in report["age_bands"]][0] == "0-3 months"
+    assert sum(b["failures"] for b in report["age_bands"]) == report["failures"]
+
+
+def test_survival_writes_the_plot(store_root, tmp_path):
+    plot = tmp_path / "tallow.svg"
+    result = run("survival", "tallow 14t", "--plot", str(plot), "--store", str(store_root))
+    assert result.exit_code == Exit.OK, result.output
+    assert plot.read_text().lstrip().startswith("<?xml")
+
+
+def test_unknown_cohort_is_one_line_and_a_usage_error(store_root):
+    result = run("survival", "Corvid NV1920", "--store", str(store_root))
+    assert result.exit_code == Exit.USAGE
+    assert result.output.count("\n") == 1 and "no cohort 'Corvid NV1920'" in result.output
+
+
+def test_plot_must_be_png_or_svg(store_root, tmp_path):
+    result = run("survival", "Tallow 14T", "--plot", str(tmp_path / "x.gif"), "--store", str(store_root))
+    assert result.exit_code == Exit.USAGE
+
+
+def test_fit_saves_a_model_that_latest_model_finds(store_root):
+    result = run("fit", "--format", "json", "--store", str(store_root))
+    assert result.exit_code == Exit.OK, result.output
+    summary = json.loads(result.stdout)
+    model = latest_model(Store(store_root))
+    assert str(model.path_) == summary["path"]
+    assert summary["holdout"]["drives"] > 0 and len(summary["calibration"]) == 10
+
+
+def test_empty_store_is_a_clear_failure(tmp_path):
+    for command in (["cohorts"], ["survival", "QH-HD8T-A"], ["fit"]):
+        result = run(*command, "--store", str(tmp_path))
+        assert result.exit_code == Exit.FAILURE
+        assert "no snapshots stored" in result.output

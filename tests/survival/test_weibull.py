@@ -1,0 +1,93 @@
+"""Weibull fit with delayed entry: against scipy, and recovery of known parameters."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy.optimize import minimize
+from scipy.stats import weibull_min
+
+from tests.survival.fleetsim import truncated_weibull
+from triage.survival.weibull import EARLY_LIFE, RANDOM, TOO_FEW, WEAR_OUT, fit_weibull, phase_of
+
+
+def test_complete_data_fit_matches_scipy_weibull_min():
+    rng = np.random.default_rng(5)
+    ages = weibull_min.rvs(1.7, scale=40_000, size=800, random_state=rng)
+    ours = fit_weibull(np.zeros_like(ages), ages, np.ones_like(ages, dtype=bool))
+    # independent maximum-likelihood fit: scipy.stats.weibull_min.fit with the location fixed at 0
+    shape, _, scale = weibull_min.fit(ages, floc=0)
+    assert ours.shape == pytest.approx(shape, rel=1e-3)
+    assert ours.scale == pytest.approx(scale, rel=1e-3)
+
+
+def _truncated_censored(shape, scale, n=3000, seed=2):
+    rng = np.random.default_rng(seed)
+    entry = rng.uniform(0, 30_000, n)
+    failure = truncated_weibull(rng, entry, shape, scale)
+    end = entry + rng.uniform(2_000, 15_000, n)  # each drive watched for a limited window
+    exit_ = np.minimum(failure, end)
+    return entry, exit_, failure <= end
+
+
+def test_delayed_entry_fit_matches_a_direct_scipy_maximisation():
+    entry, exit_, event = _truncated_censored(1.4, 50_000)
+    ours = fit_weibull(entry, exit_, event)
+
+    # The left-truncated, right-censored Weibull log-likelihood written out from Klein &
+    # Moeschberger, Survival Analysis, 2nd ed., section 3.5, maximised with scipy.optimize.
+    def negative_loglik(params):
+        k, lam = np.exp(params)
+        t, a = exit_ / 8766, entry / 8766
+        log_h = np.log(k / lam) + (k - 1) * np.log(t / lam)
+        return -np.sum(event * log_h - (t / lam) ** k + (a / lam) ** k)
+
+    best = minimize(negative_loglik, x0=[0.0, 1.0], method="Nelder-Mead",
+                    options={"xatol": 1e-10, "fatol": 1e-10, "maxiter": 5000})
+    shape, scale_years = np.exp(best.x)
+    assert ours.shape == pytest.approx(shape, rel=1e-3)
+    assert ours.scale == pytest.approx(scale_years * 8766, rel=1e-3)
+
+
+@pytest.mark.parametrize("true_shape, phase", [(0.7, EARLY_LIFE), (2.5, WEAR_OUT)])
+def test_known_shape_is_recovered_from_left_truncated_data(true_shape, phase):
+    entry, exit_, event = _truncated_censored(true_shape, 40_000)
+    fit = fit_weibull(entry, exit_, event)
+    assert fit.shape_low < true_shape < fit.shape_high  # simulated truth inside the 95 % range
+    assert fit.scale_low < 40_000 < fit.scale_high
+    assert fit.phase == phase
+
+
+def test_ignoring_delayed_entry_biases_the_shape():
+    # Drives joining at up to 30,000 h with an increasing hazard: pretending they were watched
+    # from hour 0 credits them with failure-free early hours they never showed.
+    entry, exit_, event = _truncated_censored(2.5, 40_000)
+    naive = fit_weibull(np.zeros_like(entry), exit_, event)
+    assert not (naive.shape_low < 2.5 < naive.shape_high)
+
+
+def test_exponential_lifetimes_read_as_random_failures():
+    entry, exit_, event = _truncated_censored(1.0, 60_000, n=1500)
+    assert fit_weibull(entry, exit_, event).phase == RANDOM
+
+
+def test_phase_follows_the_shape_interval():
+    assert phase_of(0.5, 0.9) == EARLY_LIFE
+    assert phase_of(0.8, 1.2) == RANDOM
+    assert phase_of(1.1, 1.9) == WEAR_OUT
+
+
+def test_a_cohort_with_one_failure_gets_no_shape():
+    fit = fit_weibull([0.0, 10.0, 20.0], [100.0, 200.0, 300.0], [True, False, False])
+    assert fit.phase == TOO_FEW and math.isnan(fit.shape)
+
+
+def test_survival_is_conditional_on_the_given_age():
+    entry, exit_, event = _truncated_censored(1.4, 50_000, n=500)
+    fit = fit_weibull(entry, exit_, event)
+    assert fit.survival([20_000.0], given_hours=20_000.0)[0] == pytest.approx(1.0)
+    # S(b | a) = S(b) / S(a) for the Weibull (definition of conditional survival)
+    assert fit.survival([30_000.0], given_hours=10_000.0)[0] == pytest.approx(
+        fit.survival([30_000.0])[0] / fit.survival([10_000.0])[0])

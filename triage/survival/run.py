@@ -1,0 +1,74 @@
+"""The store-level library functions behind ``triage fit``, ``triage cohorts`` and ``triage survival``."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Callable, Sequence
+
+import pandas as pd
+
+from triage.survival.cohorts import SurvivalReport, cohort_table, survival_report
+from triage.survival.model import FleetRiskModel
+from triage.survival.observations import REMOVAL_COLUMNS, Observations, observations, scan_store
+
+
+class EmptyStore(RuntimeError):
+    """The store holds no snapshots (nothing ingested yet, or the wrong --store)."""
+
+
+def _store(store):
+    from triage.store.dataset import Store
+
+    return store if hasattr(store, "read") else Store(Path(store))
+
+
+def _check_not_empty(store) -> None:
+    if not store.days("snapshots"):
+        raise EmptyStore(f"{store.root}: no snapshots stored (run 'triage ingest' first, or check --store)")
+
+
+def read_removals(store) -> pd.DataFrame:
+    return store.read("removals", columns=list(REMOVAL_COLUMNS))
+
+
+def load_observations(store, by: Sequence[str] = ("model",), count_proactive: bool = True,
+                      progress: Callable[[int, int], None] | None = None) -> Observations:
+    """The observation table of a store (reads only the columns the survival layer uses)."""
+    store = _store(store)
+    _check_not_empty(store)
+    scan = scan_store(store, progress=progress)
+    return observations(scan, read_removals(store), by, count_proactive)
+
+
+def cohorts_of_store(store, by: Sequence[str] = ("model",), count_proactive: bool = True,
+                     mttf_hours: float | None = None,
+                     progress: Callable[[int, int], None] | None = None) -> tuple[pd.DataFrame, Observations]:
+    """(cohort table, observations) for ``triage cohorts``."""
+    obs = load_observations(store, by, count_proactive, progress)
+    return cohort_table(obs, mttf_hours=mttf_hours), obs
+
+
+def survival_of_store(store, cohort: str, by: Sequence[str] = ("model",), count_proactive: bool = True,
+                      mttf_hours: float | None = None,
+                      progress: Callable[[int, int], None] | None = None) -> tuple[SurvivalReport, Observations]:
+    """(survival report of one cohort, observations) for ``triage survival``."""
+    obs = load_observations(store, by, count_proactive, progress)
+    return survival_report(obs, cohort, mttf_hours=mttf_hours), obs
+
+
+def fit_store(store, horizon_days: float = 30, by: Sequence[str] = ("model",), count_proactive: bool = True,
+              say: Callable[[str], None] | None = None,
+              progress: Callable[[int, int], None] | None = None) -> tuple[FleetRiskModel, Path]:
+    """Fit the fleet risk model on the whole store and save it under ``<store>/models``."""
+    store = _store(store)
+    _check_not_empty(store)
+    model = FleetRiskModel(horizon_days=horizon_days, by=by, count_proactive=count_proactive)
+    model._validated()
+    days = store.days("snapshots")
+    cut = model.holdout_cut(pd.Timestamp(days[0], tz="UTC"), pd.Timestamp(days[-1], tz="UTC"))
+    if say:
+        say("reading snapshots")
+    scan = scan_store(store, cut=cut, progress=progress)
+    model.fit_scan(scan, read_removals(store), cut=cut, progress=say)
+    path = model.save(store.models_dir)
+    return model, path
