@@ -90,34 +90,62 @@ def ingest(
         raise typer.Exit(int(Exit.INPUT_REJECTED))
 
 @app.command(
-    epilog="Example: triage demo --seed 7 --drives 1200 --days 120 --work demo-work",
+    epilog="Example: triage demo --seed 7 --drives 1200 --days 120 --work demo-work --top 15",
 )
 def demo(
     seed: int = typer.Option(7, help="Seed of the invented fleet; the same seed gives the same files."),
     drives: int = typer.Option(1200, min=10, help="Drives in the fleet."),
     days: int = typer.Option(120, min=2, help="Nightly captures per drive."),
-    work: Path = typer.Option(Path("demo-work"), help="Folder for the capture files and the store."),
+    work: Path = typer.Option(Path("demo-work"), help="Folder for the capture files, the store and the tickets."),
+    top: int = typer.Option(15, "--top", min=1, help="Drives shown in the closing ranked report."),
+    fmt: str = typer.Option("table", "--format", help="table | csv | json (the ranked report)."),
 ) -> None:
-    """Generate an invented fleet's capture files and ingest them into <work>/store."""
-    from triage.demo import FleetSpec, generate_fleet, write_captures
+    """Run the whole pipeline on an invented fleet: generate its capture files, ingest them, fit the
+    model, rank the drives, write tickets; ends with the ranked report."""
+    from triage.demo import FleetSpec, NotADemoFolder, generate_fleet, prepare_demo_folder, write_captures
     from triage.ingest import ingest_paths
     from triage.report.console import progress_bar
+    from triage.report.rank import render_ranked
+    from triage.risk.nightly import run_nightly
+    from triage.risk.rank import filter_ranked
     from triage.store.dataset import Store
 
-    typer.echo(f"demo: simulating {drives} drives x {days} nights (seed {seed})", err=True)
-    fleet = generate_fleet(FleetSpec(seed=seed, n_drives=drives, days=days))
+    if fmt not in ("table", "csv", "json"):
+        fail(f"--format must be table, csv or json, not {fmt!r}", Exit.USAGE)
+    spec = FleetSpec(seed=seed, n_drives=drives, days=days)
+    try:
+        folder, reused = prepare_demo_folder(work, spec)
+    except NotADemoFolder as exc:
+        fail(str(exc), Exit.USAGE)
+    typer.echo(f"demo: simulating {drives} drives x {days} nights (seed {seed}) into {work}"
+               + (" (same fleet as last time: the store is reused)" if reused else ""), err=True)
+    fleet = generate_fleet(spec)
     with progress_bar("writing captures") as progress:
-        files = write_captures(fleet, work / "captures", progress=progress)
-    store = Store(work / "store")
-    with store.lock(), progress_bar("ingesting") as progress:
-        report = ingest_paths(store, files, progress=progress)
-    typer.echo(
-        f"demo: {len(files)} files, {report.stored.get('snapshots', 0)} captures and "
-        f"{report.stored.get('removals', 0)} removals stored in {store.root}",
-        err=True,
-    )
+        write_captures(fleet, folder.captures, progress=progress)
+    ruleset, config = _risk_inputs(None, False, None)
+    with progress_bar("ingesting") as progress:
+        report = run_nightly(
+            Store(folder.store), folder.captures, folder.tickets, ruleset, refit_days=0.0, config=config,
+            ingest=lambda store, paths: ingest_paths(store, paths, progress=progress),
+            log=lambda line: typer.echo(f"demo: {line}", err=True))
+    typer.echo(report.summary(), err=True)
+    result = report.result
+    _print_cautions(result)
+    render_ranked(filter_ranked(result.drives, flagged_only=True, top=top), fmt, result.horizon_days)
+    typer.echo(f"demo: tickets in {folder.tickets}; explore with: triage cohorts --store {folder.store}, "
+               f"triage survival <cohort> --store {folder.store}, triage rank --store {folder.store}", err=True)
     if report.rejected:
         raise typer.Exit(int(Exit.INPUT_REJECTED))
+
+
+def _print_cautions(result) -> None:
+    """Degraded groups, on stderr: advice that could cost data defers to the site's procedure."""
+    groups = result.groups
+    if not len(groups):
+        return
+    for row in groups[groups["degraded"]].itertuples(index=False):
+        typer.echo(f"caution: group {row.group} is degraded ({row.lost} member(s) lost): do not pull a second "
+                   "drive from it before the rebuild finishes; follow the site's change procedure", err=True)
 
 
 # -- risk: rank, tickets, nightly (triage/risk, triage/report/rank.py, triage/report/tickets.py) --
@@ -175,10 +203,7 @@ def rank(
                               severity=severity or (), top=top)
     except ValueError as exc:
         fail(str(exc), Exit.USAGE)
-    degraded = result.groups[result.groups["degraded"]] if len(result.groups) else result.groups
-    for row in degraded.itertuples(index=False):
-        typer.echo(f"caution: group {row.group} is degraded ({row.lost} member(s) lost): do not pull a second "
-                   "drive from it before the rebuild finishes; follow the site's change procedure", err=True)
+    _print_cautions(result)
     render_ranked(shown, fmt, result.horizon_days)
 
 

@@ -31,12 +31,14 @@ def records(drives: pd.DataFrame) -> list[dict]:
     return [{f: _plain(row[f]) for f in JSON_FIELDS} for row in drives.to_dict("records")]
 
 
-def render_json(drives: pd.DataFrame, out: TextIO = sys.stdout) -> None:
+def render_json(drives: pd.DataFrame, out: TextIO | None = None) -> None:
+    out = out or sys.stdout  # looked up per call: tests and callers swap sys.stdout
     json.dump(records(drives), out, indent=2)
     out.write("\n")
 
 
-def render_csv(drives: pd.DataFrame, out: TextIO = sys.stdout) -> None:
+def render_csv(drives: pd.DataFrame, out: TextIO | None = None) -> None:
+    out = out or sys.stdout
     from triage.risk.tickets import neutralise  # same formula-injection guard as the ticket file
 
     writer = csv.writer(out, quoting=csv.QUOTE_MINIMAL, lineterminator="\r\n")
@@ -47,26 +49,51 @@ def render_csv(drives: pd.DataFrame, out: TextIO = sys.stdout) -> None:
         writer.writerow([neutralise("" if c is None else c) for c in cells])
 
 
+#: Below this many terminal columns the table folds into four columns (80-column terminals, mail).
+WIDE_COLUMNS = 140
+
+
+def _cells(d, p_head: str) -> dict[str, str]:
+    """The text of one drive's cells (rich markup, firmware-derived strings escaped)."""
+    sev = d.severity or "-"
+    where = f"{escape(str(d.host or '?'))}/{escape(str(d.slot or '?'))}"
+    return {
+        "rank": str(d.rank),
+        "where": where,
+        "group": f"[dim]{escape(d.group)}[/dim]" if isinstance(d.group, str) else "",
+        "drive": f"{escape(str(d.model or '?'))}\n{escape(str(d.serial))}",
+        "age": "" if pd.isna(d.age_days) else f"{d.age_days / 365.25:.1f} y",
+        "p": "n/a" if pd.isna(d.p_fail) else f"{d.p_fail:.1%}",
+        "severity": f"[{_STYLE[sev]}]{sev}[/]" if sev in _STYLE else sev,
+        "evidence": "\n".join(escape(e) for e in d.evidence) or "-",
+        "action": f"[bold red]{escape(d.action)}[/]" if d.degraded else escape(d.action),
+    }
+
+
 def render_table(drives: pd.DataFrame, horizon_days: float | None) -> None:
     p_head = f"P(fail {horizon_days:g} d)" if horizon_days else "P(fail)"
+    console = stdout_console()
     table = Table(title="Drives to look at, most urgent first", title_justify="left", expand=False)
-    for head in ("#", "where", "drive", "age", p_head, "severity", "evidence", "what to do"):
-        table.add_column(head, overflow="fold")
-    for d in drives.itertuples(index=False):
-        where = f"{escape(str(d.host or '?'))}/{escape(str(d.slot or '?'))}"
-        if isinstance(d.group, str):
-            where += f"\n[dim]{escape(d.group)}[/dim]"
-        drive = f"{escape(str(d.model or '?'))}\n{escape(str(d.serial))}"
-        age = "" if pd.isna(d.age_days) else f"{d.age_days / 365.25:.1f} y"
-        p = "n/a" if pd.isna(d.p_fail) else f"{d.p_fail:.1%}"
-        sev = d.severity or "-"
-        sev_cell = f"[{_STYLE[sev]}]{sev}[/]" if sev in _STYLE else sev
-        evidence = "\n".join(escape(e) for e in d.evidence) or "-"
-        action = escape(d.action)
-        if d.degraded:
-            action = f"[bold red]{action}[/]"
-        table.add_row(str(d.rank), where, drive, age, p, sev_cell, evidence, action)
-    stdout_console().print(table)
+    if console.width >= WIDE_COLUMNS:
+        for head in ("#", "where", "drive", "age", p_head, "severity"):
+            table.add_column(head, no_wrap=True)
+        table.add_column("evidence", ratio=3)
+        table.add_column("what to do", ratio=2)
+        for d in drives.itertuples(index=False):
+            c = _cells(d, p_head)
+            where = c["where"] + (f"\n{c['group']}" if c["group"] else "")
+            table.add_row(c["rank"], where, c["drive"], c["age"], c["p"], c["severity"], c["evidence"], c["action"])
+    else:
+        table.add_column("#", no_wrap=True)
+        table.add_column("where / drive", no_wrap=True, overflow="ellipsis", max_width=22)
+        table.add_column("risk", no_wrap=True)
+        table.add_column("evidence -> what to do", ratio=1)
+        for d in drives.itertuples(index=False):
+            c = _cells(d, p_head)
+            where = "\n".join(x for x in (c["where"], c["group"], c["drive"]) if x)
+            risk = f"{c['severity']}\n{p_head}: {c['p']}\nage {c['age'] or '?'}"
+            table.add_row(c["rank"], where, risk, f"{c['evidence']}\n[bold]-> {c['action']}[/bold]")
+    console.print(table)
 
 
 def render_ranked(drives: pd.DataFrame, fmt: str, horizon_days: float | None = None) -> None:

@@ -34,6 +34,7 @@ class NightlyReport:
     tickets: TicketCounts | None = None
     notes: list[str] = field(default_factory=list)
     exit: Exit = Exit.OK
+    result: RankResult | None = None  # tonight's ranking, for a caller that also prints it
 
     def summary(self) -> str:
         t = self.tickets
@@ -89,6 +90,7 @@ def run_nightly(
                 except ValueError as exc:  # e.g. no failures yet: rank on rules alone, say so
                     report.notes.append(f"refit skipped: {exc}")
         result = rank(store, ruleset, config=config)
+        report.result = result
         report.notes += result.notes
         report.ranked = len(result.drives)
         _, report.tickets = export_tickets(result.drives, out, as_of=result.as_of or datetime.now(timezone.utc))
