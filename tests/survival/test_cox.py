@@ -143,3 +143,42 @@ def test_data_without_failures_is_refused_with_a_reason():
 def test_empty_intervals_are_refused():
     with pytest.raises(CoxFitError, match="stop > start"):
         StratifiedCox().fit([5.0], [5.0], [True], [[1.0]])
+
+
+def test_risk_set_sums_keep_small_hazards_beside_a_huge_one():
+    from math import fsum
+
+    from triage.survival.cox import _prepare, _RiskSets
+
+    # Row 0 has exp(eta) = e^60 and leaves early; the rows at risk after it have exp(eta) near 1.
+    # A single running sum would leave only rounding noise for them.
+    rng = np.random.default_rng(3)
+    n = 300
+    start = rng.uniform(0, 5, n)
+    stop = start + rng.uniform(1, 10, n)
+    start[0], stop[0] = 0.0, 1.5
+    event = rng.uniform(size=n) < 0.3
+    event[0] = True
+    eta = rng.normal(0, 1, n)
+    eta[0] = 60.0
+    (st,) = _prepare(start, stop, event, np.zeros((n, 0)), np.zeros(n))
+    at_risk = np.searchsorted(st.times, start, "right") < np.searchsorted(st.times, stop, "right")
+    sums = _RiskSets(st, eta[at_risk])
+    ours = sums.total() * np.exp(sums.level)
+    # the definition, summed exactly (math.fsum): rows with start < t_k <= stop
+    expected = [fsum(np.exp(eta[(start < t) & (t <= stop)])) for t in st.times]
+    np.testing.assert_allclose(ours, expected, rtol=1e-12)
+
+
+def test_a_covariate_only_failing_drives_carry_still_fits_to_finite_values():
+    # quasi-separation: every drive with x = 1 fails early; the ridge penalty keeps beta finite,
+    # and the Newton steps never accept a non-finite likelihood on the way there
+    rng = np.random.default_rng(11)
+    n = 2000
+    x = (rng.uniform(size=n) < 0.004).astype(float)
+    stop = np.where(x == 1, rng.uniform(1, 2, n), rng.uniform(1, 100, n))
+    event = (x == 1) | (rng.uniform(size=n) < 0.01)
+    X = np.column_stack([x, 8 * x])  # large values of a collinear pair push exp(beta.x) to extremes
+    model = StratifiedCox(penalizer=0.1).fit(np.zeros(n), stop, event, X)
+    assert np.all(np.isfinite(model.coef_)) and np.isfinite(model.log_likelihood_)
+    assert model.coef_ @ [1, 8] > 2  # x = 1 clearly raises the hazard

@@ -73,28 +73,84 @@ def _prepare(start, stop, event, X, strata) -> list[_Stratum]:
     return out
 
 
-def _interval_sum(st: _Stratum, values: np.ndarray) -> np.ndarray:
-    """sum over rows at risk at each failure age t_k of ``values`` (difference-array trick)."""
-    m = len(st.times)
-    acc = np.bincount(st.start_index, weights=values, minlength=m + 1)
-    acc -= np.bincount(st.stop_index, weights=values, minlength=m + 1)
-    return np.cumsum(acc)[:m]
+#: Rows whose relative hazards lie within a factor exp(MAGNITUDE_SPAN) are summed together.
+MAGNITUDE_SPAN = 8.0
+
+
+class _RiskSets:
+    """Sums over the rows at risk at each failure age t_k, for one stratum at one beta.
+
+    Row j is at risk at t_k for start_index_j <= k < stop_index_j: add its value at its start
+    index, subtract it at its stop index, and a cumulative sum gives every risk-set total in
+    O(rows + failure ages) (a difference array).
+
+    Done naively over exp(eta) this loses the small terms: once a row with exp(eta) = 1e20 has
+    entered and left, the rows still at risk sum to 1e20 - 1e20 + small, i.e. rounding noise,
+    which can be zero or negative and wreck the likelihood; and exp(eta) itself overflows or
+    underflows for large |eta|. So rows are grouped by magnitude (eta within MAGNITUDE_SPAN of
+    each other), each group is summed relative to its own largest eta, and each failure age's
+    total is expressed relative to ``level[k]``, the largest eta of any group at risk there:
+
+        sum_{j at risk at t_k} exp(eta_j) w_j = exp(level[k]) * total(w)[k]
+
+    Every term added is then at most 1 in size, and group totals (all of one sign for w > 0)
+    are added only after the subtraction that a difference array needs.
+    """
+
+    def __init__(self, st: _Stratum, eta: np.ndarray):
+        self.st = st
+        self.eta = eta
+        m = len(st.times)
+        bins = np.floor((eta.max() - eta) / MAGNITUDE_SPAN).astype(np.int64) if len(eta) else eta.astype(np.int64)
+        _, group = np.unique(bins, return_inverse=True)
+        n_groups = int(group.max()) + 1 if len(group) else 1
+        top = np.full(n_groups, -np.inf)
+        np.maximum.at(top, group, eta)
+        self.phi = np.exp(eta - top[group])  # in (e^-SPAN, 1]
+        self._offset = group * (m + 1)
+        self._shape = (n_groups, m + 1)
+        counts = self._group_sums(np.ones(len(eta)))
+        present = counts > 0.5
+        levels = np.where(present, top[:, None], -np.inf)
+        self.level = levels.max(axis=0)  # every t_k has its failing row at risk: finite
+        self._scale = np.where(present, np.exp(levels - self.level), 0.0)
+
+    def _group_sums(self, values: np.ndarray) -> np.ndarray:
+        size = self._shape[0] * self._shape[1]
+        acc = np.bincount(self._offset + self.st.start_index, weights=values, minlength=size)
+        acc -= np.bincount(self._offset + self.st.stop_index, weights=values, minlength=size)
+        return np.cumsum(acc.reshape(self._shape), axis=1)[:, : self._shape[1] - 1]
+
+    def total(self, weights: np.ndarray | None = None) -> np.ndarray:
+        """sum over rows at risk at t_k of exp(eta_j - level[k]) * weights_j, for every k."""
+        values = self.phi if weights is None else self.phi * weights
+        return (self._group_sums(values) * self._scale).sum(axis=0)
+
+    def at_failures(self, weights: np.ndarray | None = None) -> np.ndarray:
+        """The same sum over the rows failing at t_k only (Efron's T_k)."""
+        st = self.st
+        values = np.exp(self.eta[st.event_rows] - self.level[st.event_index])
+        if weights is not None:
+            values = values * weights
+        return np.bincount(st.event_index, weights=values, minlength=len(st.times))
 
 
 def _efron_terms(st: _Stratum, beta: np.ndarray, ties: str, hessian: bool = True):
-    """Log partial likelihood, gradient and information matrix of one stratum."""
+    """Log partial likelihood, gradient and information matrix of one stratum.
+
+    Risk-set sums come from ``_RiskSets`` relative to exp(level[k]); the partial likelihood
+    terms are ratios of such sums at the same t_k, so only log L needs level[k] added back.
+    """
     X = st.X
     p = X.shape[1]
     eta = X @ beta
-    phi = np.exp(eta)
+    risk = _RiskSets(st, eta)
     m = len(st.times)
-    R = _interval_sum(st, phi)
-    Rx = np.column_stack([_interval_sum(st, phi * X[:, j]) for j in range(p)]) if p else np.zeros((m, 0))
-    k = st.event_index
+    R = risk.total()
+    Rx = np.column_stack([risk.total(X[:, j]) for j in range(p)]) if p else np.zeros((m, 0))
     Xd = X[st.event_rows]
-    phid = phi[st.event_rows]
-    T = np.bincount(k, weights=phid, minlength=m)
-    Tx = np.column_stack([np.bincount(k, weights=phid * Xd[:, j], minlength=m) for j in range(p)]) if p else np.zeros((m, 0))
+    T = risk.at_failures()
+    Tx = np.column_stack([risk.at_failures(Xd[:, j]) for j in range(p)]) if p else np.zeros((m, 0))
     # expand failure age k into its d_k Efron terms, fraction c = l / d_k
     d = st.deaths
     k_rep = np.repeat(np.arange(m), d)
@@ -102,7 +158,7 @@ def _efron_terms(st: _Stratum, beta: np.ndarray, ties: str, hessian: bool = True
     c = (np.arange(len(k_rep)) - first) / d[k_rep] if ties == "efron" else np.zeros(len(k_rep))
     den = R[k_rep] - c * T[k_rep]
     num = Rx[k_rep] - c[:, None] * Tx[k_rep]
-    loglik = float(eta[st.event_rows].sum() - np.log(den).sum())
+    loglik = float(eta[st.event_rows].sum() - (np.log(den) + risk.level[k_rep]).sum())
     gradient = Xd.sum(axis=0) - (num / den[:, None]).sum(axis=0)
     if not hessian:
         return loglik, gradient, None
@@ -110,8 +166,8 @@ def _efron_terms(st: _Stratum, beta: np.ndarray, ties: str, hessian: bool = True
     mean = num / den[:, None]
     for i in range(p):
         for j in range(i, p):
-            Rxx = _interval_sum(st, phi * X[:, i] * X[:, j])
-            Txx = np.bincount(k, weights=phid * Xd[:, i] * Xd[:, j], minlength=m)
+            Rxx = risk.total(X[:, i] * X[:, j])
+            Txx = risk.at_failures(Xd[:, i] * Xd[:, j])
             value = ((Rxx[k_rep] - c * Txx[k_rep]) / den).sum() - (mean[:, i] * mean[:, j]).sum()
             info[i, j] = info[j, i] = value
     return loglik, gradient, info
@@ -160,7 +216,10 @@ class StratifiedCox:
             while True:
                 candidate = beta + step
                 new_loglik, new_gradient, new_info = self._evaluate(strata_data, candidate)
-                if new_loglik >= loglik - 1e-12 or halvings >= 30:
+                if np.isfinite(new_loglik) and new_loglik >= loglik - 1e-12:
+                    break
+                if halvings >= 30:  # no step up the likelihood: beta is as good as it gets
+                    candidate, new_loglik, new_gradient, new_info = beta, loglik, gradient, info
                     break
                 step /= 2
                 halvings += 1
@@ -196,15 +255,16 @@ class StratifiedCox:
         """{stratum: (failure ages, H0 at those ages)} at the covariate centre."""
         out = {}
         for st in strata_data:
-            phi = np.exp(st.X @ beta)
+            eta = st.X @ beta
+            risk = _RiskSets(st, eta)
             m = len(st.times)
-            R = _interval_sum(st, phi)
-            T = np.bincount(st.event_index, weights=phi[st.event_rows], minlength=m)
+            R, T = risk.total(), risk.at_failures()  # both relative to exp(level[k])
             d = st.deaths
             k_rep = np.repeat(np.arange(m), d)
             first = np.repeat(np.cumsum(d) - d, d)
             c = (np.arange(len(k_rep)) - first) / d[k_rep] if self.ties == "efron" else np.zeros(len(k_rep))
-            jumps = np.bincount(k_rep, weights=1.0 / (R[k_rep] - c * T[k_rep]), minlength=m)
+            jumps = np.bincount(k_rep, weights=np.exp(-risk.level[k_rep]) / (R[k_rep] - c * T[k_rep]),
+                                minlength=m)
             out[st.name] = (st.times.copy(), np.cumsum(jumps))
         return out
 
