@@ -30,8 +30,10 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Iterable, Iterator, Mapping
 
+import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
@@ -160,40 +162,46 @@ class Store:
         )
         return written
 
-    def _write_table(self, table: str, frame: pd.DataFrame, batch: str) -> int:
+    def _write_table(self, table: str, frame: pd.DataFrame | pa.Table, batch: str) -> int:
         schema, time_column, key = TABLES[table]
-        if frame.empty:
+        if len(frame) == 0:
             return 0
-        arrow = to_arrow(frame, schema)
-        frame = arrow.to_pandas()  # normalised types for the key comparison
-        frame = frame.drop_duplicates(list(key), keep="last")
-        days = frame[time_column].dt.strftime("%Y-%m-%d")
+        rows = frame if isinstance(frame, pa.Table) else to_arrow(frame, schema)
+        rows = _last_per_key(rows.cast(schema), list(key))
+        day_of = pc.cast(rows[time_column], pa.date32()).to_numpy(zero_copy_only=False).astype("int64")
+        order = np.argsort(day_of, kind="stable")
+        rows, day_of = rows.take(pa.array(order)), day_of[order]
+        starts = np.flatnonzero(np.r_[True, day_of[1:] != day_of[:-1]])
+        ends = np.r_[starts[1:], len(day_of)]
         written = 0
-        for day, rows in frame.groupby(days, sort=True):
-            rows = self._drop_stored(table, day, rows, key)
-            if rows.empty:
+        for start, end in zip(starts, ends):
+            day = str(np.datetime64(int(day_of[start]), "D"))
+            part = self._drop_stored(table, day, rows.slice(start, end - start), key)
+            if part.num_rows == 0:
                 continue
             part_dir = self.table_dir(table) / f"{PARTITION_COLUMN}={day}"
             part_dir.mkdir(parents=True, exist_ok=True)
             final = part_dir / f"part-{batch}.parquet"
             temp = part_dir / f".part-{batch}.parquet.tmp"
-            pq.write_table(to_arrow(rows, schema), temp, compression="zstd")
+            pq.write_table(part, temp, compression="zstd")
             _fsync_file(temp)
             os.replace(temp, final)
             _fsync_dir(part_dir)
-            written += len(rows)
+            written += part.num_rows
         return written
 
-    def _drop_stored(self, table: str, day: str, rows: pd.DataFrame, key) -> pd.DataFrame:
+    def _drop_stored(self, table: str, day: str, rows: pa.Table, key) -> pa.Table:
+        """``rows`` without those whose key is already stored in that day's partition."""
         part_dir = self.table_dir(table) / f"{PARTITION_COLUMN}={day}"
         files = sorted(part_dir.glob("part-*.parquet")) if part_dir.is_dir() else []
         if not files:
             return rows
-        schema = _schema_of(table)
-        stored = ds.dataset(files, schema=schema, format="parquet").to_table(columns=list(key))
-        stored_keys = stored.to_pandas().drop_duplicates()
-        merged = rows.merge(stored_keys, on=list(key), how="left", indicator=True)
-        return rows[(merged["_merge"] == "left_only").to_numpy()]
+        stored = ds.dataset(files, schema=_schema_of(table), format="parquet").to_table(columns=list(key))
+        seen = stored.group_by(list(key), use_threads=False).aggregate([])  # distinct stored keys
+        marked = rows.append_column("_row", pa.array(np.arange(rows.num_rows)))
+        kept = marked.join(seen, keys=list(key), join_type="left anti")
+        index = np.sort(kept["_row"].to_numpy())
+        return rows.take(pa.array(index))
 
     def _write_quarantine(self, entries: list[Mapping], batch: str) -> None:
         self.quarantine_dir.mkdir(parents=True, exist_ok=True)
@@ -248,6 +256,33 @@ class Store:
             return []
         prefix = f"{PARTITION_COLUMN}="
         return sorted(p.name[len(prefix):] for p in root.iterdir() if p.name.startswith(prefix))
+
+
+def _key_codes(rows: pa.Table, key: list[str]) -> list[np.ndarray]:
+    """Each key column as integers that compare equal exactly when the values do (nulls: -1)."""
+    codes = []
+    for name in key:
+        column = rows[name].combine_chunks() if rows.num_rows else pa.array([], rows.schema.field(name).type)
+        if pa.types.is_string(column.type) or pa.types.is_large_string(column.type):
+            column = pc.dictionary_encode(column).indices
+        elif pa.types.is_timestamp(column.type):
+            column = column.cast(pa.int64())
+        codes.append(column.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64))
+    return codes
+
+
+def _last_per_key(rows: pa.Table, key: list[str]) -> pa.Table:
+    """One row per key, the last one given (a capture repeated in a batch counts once)."""
+    codes = _key_codes(rows, key)
+    order = np.lexsort(codes[::-1])  # stable: equal keys keep their input order
+    sorted_codes = [c[order] for c in codes]
+    same_as_next = np.ones(len(order) - 1, dtype=bool) if len(order) else np.zeros(0, dtype=bool)
+    for c in sorted_codes:
+        same_as_next &= c[1:] == c[:-1]
+    if not same_as_next.any():
+        return rows
+    last = order[np.r_[~same_as_next, True]]
+    return rows.take(pa.array(np.sort(last)))
 
 
 def to_arrow(frame: pd.DataFrame, schema: pa.Schema) -> pa.Table:
