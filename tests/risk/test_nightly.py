@@ -53,3 +53,20 @@ def test_summary_line_names_counts_and_exit(tmp_path):
     assert report.refitted  # no saved model yet: refit due
     line = report.summary()
     assert "1 new / 0 ongoing / 0 cleared tickets" in line and "NEW_FLAGS" in line
+
+
+def test_nightly_refit_keeps_the_settings_of_the_model_the_operator_fitted(tmp_path):
+    from tests.survival.fleetsim import simulate_fleet
+    from triage.risk.nightly import refit_like_latest
+    from triage.survival import fit_and_save, latest_model
+
+    snapshots, removals, _ = simulate_fleet(n_drives=300, days=60, seed=13, scale_hours=25_000)
+    store = Store(tmp_path / "store")
+    store.append("snapshots", snapshots)
+    store.append("removals", removals)
+    fit_and_save(store, horizon_days=14, by=("model", "capacity_bytes"), count_proactive=False)
+    refit_like_latest(store)
+    refitted = latest_model(store)
+    assert refitted.path_.name.startswith("fleet-risk-v2-")
+    assert (refitted.horizon_days, tuple(refitted.by), refitted.count_proactive) == (
+        14, ("model", "capacity_bytes"), False)

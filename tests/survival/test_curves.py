@@ -115,3 +115,12 @@ def test_age_band_limits_are_garwood_limits_over_exposure():
     assert row["failures"] == 1
     # Garwood 1936 chi-square form via scipy.stats.chi2
     assert row["hazard_high"] == pytest.approx(100 * chi2.ppf(0.975, 4) / 2 / years)
+
+
+def test_at_risk_counts_only_drives_that_entered_before_the_failure_age():
+    # Risk set of the delayed-entry product-limit estimator: Y(t) = #{entry < t <= exit}
+    # (Klein & Moeschberger, 2nd ed., 4.6). A drive entering exactly at t is not yet at risk.
+    curves = survival_curves([0, 0, 0, 5], [5, 8, 9, 9], [True, False, False, False])
+    row = curves.table.set_index("age_hours").loc[5.0]
+    assert row["at_risk"] == 3
+    assert row["survival"] == pytest.approx(1 - 1 / 3)

@@ -77,6 +77,10 @@ def test_phase_follows_the_shape_interval():
     assert phase_of(0.5, 0.9) == EARLY_LIFE
     assert phase_of(0.8, 1.2) == RANDOM
     assert phase_of(1.1, 1.9) == WEAR_OUT
+    # a flat likelihood on one side leaves that limit unbounded; the other side still decides
+    assert phase_of(1.3, math.inf) == WEAR_OUT
+    assert phase_of(0.0, 0.8) == EARLY_LIFE
+    assert phase_of(0.0, math.inf) == RANDOM
 
 
 def test_a_cohort_with_one_failure_gets_no_shape():

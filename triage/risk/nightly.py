@@ -52,6 +52,22 @@ def model_age_days(store, now: float | None = None) -> float | None:
     return ((now or time.time()) - max(p.stat().st_mtime for p in files)) / 86400.0
 
 
+def refit_like_latest(store):
+    """Refit the survival model with the settings of the newest saved one (horizon, cohort keys,
+    proactive counting), so the nightly refit never silently replaces a model an operator fitted
+    with other settings; the defaults when there is none yet."""
+    import triage.survival as survival  # noqa: PLC0415  (survival layer, to our left)
+
+    try:
+        previous = survival.latest_model(store)
+    except survival.ModelFormatError:
+        previous = None  # unreadable (e.g. a newer format): a fresh fit with the defaults
+    settings = {} if previous is None else {
+        "horizon_days": previous.horizon_days, "by": tuple(previous.by),
+        "count_proactive": previous.count_proactive}
+    return survival.fit_and_save(store, **settings)
+
+
 def run_nightly(
     store,
     dumps: Path,
@@ -78,17 +94,11 @@ def run_nightly(
 
         age = model_age_days(store)
         if age is None or age >= refit_days:
-            if refit is None:
-                import triage.survival as survival  # noqa: PLC0415
-                refit = getattr(survival, "fit_and_save", None)
-            if refit is None:
-                report.notes.append("refit due but the survival layer has no fit_and_save(); model kept")
-            else:
-                try:
-                    refit(store)
-                    report.refitted = True
-                except ValueError as exc:  # e.g. no failures yet: rank on rules alone, say so
-                    report.notes.append(f"refit skipped: {exc}")
+            try:
+                (refit or refit_like_latest)(store)
+                report.refitted = True
+            except ValueError as exc:  # e.g. no failures yet: rank on rules alone, say so
+                report.notes.append(f"refit skipped: {exc}")
         result = rank(store, ruleset, config=config)
         report.result = result
         report.notes += result.notes

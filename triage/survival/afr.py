@@ -25,7 +25,8 @@ from scipy.stats import chi2
 
 #: Hours in a year of 365.25 days, the convention behind datasheet MTTF -> AFR conversions.
 HOURS_PER_YEAR = 8766.0
-#: AFR's denominator: drive-days are turned into drive-years with 365 days (as the issue asks).
+#: AFR's denominator: drive-days are turned into drive-years of 365 days, the definition this
+#: project states (AFR = failures / (drive-days / 365)); age bands and MTTF use 8766 h (365.25 d).
 DAYS_PER_YEAR = 365.0
 
 

@@ -69,8 +69,7 @@ def survival_curves(entry_hours, exit_hours, event, alpha: float = 0.05) -> Curv
     # the classic estimator d/Y at tied ages (lifelines would otherwise split ties as 1/Y + 1/(Y-1) ...)
     na = NelsonAalenFitter(alpha=alpha, nelson_aalen_smoothing=False).fit(exit_, event, entry=entry)
     events = km.event_table
-    # lifelines' table counts entries at an age as at risk at that age; rows where someone
-    # failed are the only ages where the curves move.
+    # rows where someone failed are the only ages where the curves move
     ages = events.index[events["observed"].to_numpy() > 0].to_numpy(dtype=float)
     start = float(entry.min())
     ages = np.concatenate([[start], ages[ages > start]])
@@ -78,7 +77,10 @@ def survival_curves(entry_hours, exit_hours, event, alpha: float = 0.05) -> Curv
     band = km.confidence_interval_.reindex(ages, method="ffill")
     cumhaz = na.cumulative_hazard_.iloc[:, 0].reindex(ages, method="ffill").fillna(0.0)
     cumhaz_band = na.confidence_interval_.reindex(ages, method="ffill")
-    at_risk = events["at_risk"].reindex(ages, method="ffill").fillna(0)
+    # Y(t) = #{entry < t <= exit}, the risk set the estimates use. (lifelines' event table also
+    # counts a drive entering exactly at t, which whole-hour entry ages make common.)
+    at_risk = pd.Series(np.searchsorted(np.sort(entry), ages, side="left")
+                        - np.searchsorted(np.sort(exit_), ages, side="left"), index=ages)
     failures = events["observed"].reindex(ages).fillna(0)
     table = pd.DataFrame({
         "age_hours": ages,
@@ -95,10 +97,10 @@ def survival_curves(entry_hours, exit_hours, event, alpha: float = 0.05) -> Curv
 
 
 def exposure_in_bands(entry_hours, exit_hours, event, edges) -> tuple[np.ndarray, np.ndarray]:
-    """Drive-hours at risk and failures in each age band ``[edges[j], edges[j+1])``.
+    """Drive-hours at risk and failures in each age band ``(edges[j], edges[j+1]]``.
 
     A drive contributes ``overlap((entry, exit], band)`` hours to a band, and its failure (at
-    its exit age) to the band holding that age.
+    its exit age) to the band whose half-open interval ``(lo, hi]`` holds that age.
     """
     entry = np.asarray(entry_hours, dtype=float)
     exit_ = np.asarray(exit_hours, dtype=float)

@@ -72,7 +72,8 @@ class WeibullFit:
 
 
 def phase_of(shape_low: float, shape_high: float) -> str:
-    if not (math.isfinite(shape_low) and math.isfinite(shape_high)):
+    """The phase a shape range implies; a limit the likelihood never reaches is 0 or inf."""
+    if math.isnan(shape_low) or math.isnan(shape_high):
         return NO_FIT
     if shape_high < 1:
         return EARLY_LIFE
