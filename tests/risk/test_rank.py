@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from types import SimpleNamespace
+
 import pandas as pd
 import pytest
 
@@ -89,3 +91,21 @@ def test_filters_combine_host_site_group_severity_and_top():
 def test_site_is_the_host_name_prefix():
     assert site_of("cedar-r4-n11") == "cedar"
     assert site_of("birch.quillmere.example") == "birch"
+
+
+def test_an_unreadable_saved_model_means_rules_alone_with_a_note(tmp_path):
+    from triage.risk.rank import rank_store
+    from triage.store.dataset import Store
+
+    store = Store(tmp_path / "store")
+    store.append("snapshots", pd.DataFrame({
+        "serial": ["QN1"], "model": ["Corvid NV1920"], "bus": ["nvme"], "host": ["cedar-r1-n02"],
+        "taken_at": pd.to_datetime(["2026-11-01T02:00:00Z"]), "power_on_hours": [5000]}))
+    old = store.models_dir / "fleet-risk-v1-20260101T000000Z"
+    old.mkdir(parents=True)
+    (old / "model.json").write_text('{"format": "triage-fleet-risk", "format_version": 999}')
+    result = rank_store(store, SimpleNamespace(rules=[], window_days=3),
+                        evaluate=lambda ruleset, history, now=None: pd.DataFrame(
+                            columns=["serial", "rule_id", "severity", "category", "title", "evidence"]))
+    assert not result.model_used and len(result.drives) == 1
+    assert any("unreadable" in note and "triage fit" in note for note in result.notes)

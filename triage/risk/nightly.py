@@ -52,6 +52,16 @@ def model_age_days(store, now: float | None = None) -> float | None:
     return ((now or time.time()) - max(p.stat().st_mtime for p in files)) / 86400.0
 
 
+def _model_readable(store) -> bool:
+    import triage.survival as survival  # noqa: PLC0415
+
+    try:
+        survival.latest_model(store)
+        return True
+    except survival.ModelFormatError:
+        return False
+
+
 def refit_like_latest(store):
     """Refit the survival model with the settings of the newest saved one (horizon, cohort keys,
     proactive counting), so the nightly refit never silently replaces a model an operator fitted
@@ -93,7 +103,7 @@ def run_nightly(
         log(f"ingest: {got.files_read} file(s), {got.new_rows} new row(s), {len(got.rejected)} rejected")
 
         age = model_age_days(store)
-        if age is None or age >= refit_days:
+        if age is None or age >= refit_days or not _model_readable(store):
             try:
                 (refit or refit_like_latest)(store)
                 report.refitted = True

@@ -235,12 +235,10 @@ def rank_store(
 
 
 def _latest_model(store, notes: list[str]):
+    import triage.survival as survival  # noqa: PLC0415  (survival layer, to our left)
+
     try:
-        import triage.survival as survival  # noqa: PLC0415
-    except ImportError:  # pragma: no cover - the survival layer is part of the package
+        return survival.latest_model(store)
+    except survival.ModelFormatError as exc:
+        notes.append(f"saved model unreadable ({exc}): ranking on rules alone until 'triage fit' runs")
         return None
-    finder = getattr(survival, "latest_model", None)
-    if finder is None:
-        notes.append("the survival layer offers no saved-model reader yet")
-        return None
-    return finder(store)

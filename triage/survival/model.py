@@ -3,29 +3,69 @@
     P = 1 - exp( -[H0_s(a + 24 H) - H0_s(a)] * exp(beta . (x - centre)) )
 
 with ``a`` the drive's power-on hours, ``s`` its cohort's stratum, ``x`` its covariates now and
-``H0_s`` the stratum's baseline cumulative hazard from the stratified Cox fit (``cox.py``). This
-is the conditional survival ``S(a + h | x) / S(a | x)`` of the proportional-hazards model with
-the covariates held at their current values over the horizon (Klein & Moeschberger, Survival
+``H0_s`` the stratum's baseline cumulative hazard at the covariate centre. This is the
+conditional survival ``S(a + h | x) / S(a | x)`` of the proportional-hazards model with the
+covariates held at their current values over the horizon (Klein & Moeschberger, Survival
 Analysis, 2nd ed., 8.8, "estimation of the survival function"; Therneau & Grambsch, Modeling
 Survival Data, 10.2). Holding x fixed is the usual forecasting assumption for time-varying
 covariates; a drive whose pending sectors keep growing is under-predicted.
 
-Baseline between failure ages: the Breslow step function with each jump spread evenly over the
-ages since the previous failure (a piecewise-constant hazard), so a 30-day window never falls
-"between two steps" and predicts zero. Beyond the stratum's last failure age: a constant hazard,
-the baseline mass of the stratum's last fifth of failures spread over the ages from the first of
-them to the oldest age observed in the stratum (nothing is extrapolated with a Weibull: the
-Weibull is fitted to whole cohorts, the baseline to a drive at the covariate centre).
+Baseline: piecewise-constant hazard per stratum (``banded_baseline``). ``beta`` and ``centre``
+come from the stratified Cox fit (``cox.py``); the baseline hazard is then constant on age pieces
+``(a_j, a_j+1]`` and estimated on each piece from failures over relative-hazard-weighted
+drive-hours:
+
+    D_j = failures of the stratum at ages in (a_j, a_j+1]
+    E_j = sum over covariate episodes i of w_i * |(start_i, stop_i] n (a_j, a_j+1]|,
+          w_i = exp(beta . (x_i - centre))
+    h_j = (D_j + s_j) / (E_j + s_j * E / D)   E = sum_j E_j,  D = sum_j D_j,
+                                              s_j = 1 / (number of pieces in piece j's band)
+    H0_s(a) = sum_j h_j * |(a_j, a_j+1] n (0, a]|
+
+Without the ``s_j`` terms, ``h_j = D_j / E_j`` is the maximum-likelihood baseline of the
+piecewise-exponential proportional-hazards model with beta held at the Cox estimate: the
+log-likelihood in ``h_j`` is ``D_j log h_j - h_j E_j`` (Holford, Biometrics 36, 1980; Laird &
+Olivier, JASA 76, 1981; Friedman, Annals of Statistics 10, 1982; Brostrom, Event History
+Analysis with R, 2nd ed., 4.3). Breslow's estimator is this same MLE with one piece between
+each pair of consecutive failure ages and censorings moved to the start of their piece (Breslow,
+discussion of Cox 1972, JRSS B 34; from memory) -- the "jump spread over the ages since the
+previous failure" this module used before. With only tens of failures per stratum those
+one-failure pieces make a 30-day increment swing by orders of magnitude between neighbouring
+ages; pieces holding ~``failures_per_piece`` failures remove that at the cost of some age
+resolution, and agree with Breslow at piece edges once failures are many (tests: against
+statsmodels' Breslow baseline and lifelines' Nelson-Aalen).
+
+``s_j`` and ``E / D``: each age band carries one pseudo-failure at the stratum's overall rate
+``D / E`` (shared evenly by the band's pieces): a gamma prior with that mean, and ``h_j`` is the
+posterior mean for a Poisson count ``D_j`` with exposure ``E_j`` (Gelman et al., Bayesian Data
+Analysis, 3rd ed., 2.6, Poisson model with exposure; from memory). A band with exposure but no
+failure gets ``1 / (E_b + E / D)``: small, honest, never zero; a band with ``D_b`` failures is
+moved by about ``1 / D_b`` of its rate, which vanishes as failures grow (one pseudo-failure per
+*piece* would not: pieces hold a fixed ``failures_per_piece``); with one band it is exactly the
+constant-hazard MLE ``D / E``. Shrinking was chosen over merging empty bands with a neighbour
+because merging moves band edges with the data, and a drive's prediction would jump when one
+failure more or less changed which bands merge.
+
+Pieces: the age bands of ``curves.AGE_BANDS`` (``age_bands``), cut at the stratum's youngest
+entry and oldest exit age; a band holding ``D_b >= 2 * failures_per_piece`` failures is split
+into ``floor(D_b / failures_per_piece)`` equal-width pieces (25 failures: about 20 % relative
+standard error per piece, our choice, no source). The first piece reaches down to age 0 and the
+last one up to any age: a drive older than any the stratum has seen continues at the rate of its
+oldest piece (nothing is extrapolated with a Weibull: the Weibull is fitted to whole cohorts,
+the baseline to a drive at the covariate centre).
 
 Strata: each cohort with at least ``min_stratum_failures`` failures has its own baseline; the
-rest share one pooled stratum. A cohort never seen in training gets the drive-weighted mean of
-all strata's baseline increments.
+rest share one pooled stratum. A cohort never seen in training, or whose stratum had no failure,
+gets the drive-weighted mean of all strata's baseline increments.
 
 Saved form (no pickle): ``<store>/models/fleet-risk-v<N>-<UTC stamp>/`` holding ``model.json``
-(configuration, coefficients, strata, data window, checks) and Parquet tables ``baseline``,
+(configuration, coefficients, strata, data window, checks) and Parquet tables ``baseline`` (one
+row per stratum and piece: ``age_from_hours``, ``age_to_hours``, ``failures``,
+``exposure_hours``, ``hazard_per_hour``, ``cumulative_hazard`` at ``age_from_hours``),
 ``cohorts``, ``calibration``, ``exclusions``. ``N`` counts fits in that store; ``latest_model``
-takes the highest. ``model.json`` carries ``format_version``; a newer one than this code knows
-is refused with a message, never half-read.
+takes the highest. ``model.json`` carries ``format_version``; any other version than this code
+writes is refused with a message, never half-read (version 1 held the interpolated Breslow steps
+and a tail rate: refit).
 """
 
 from __future__ import annotations
@@ -45,6 +85,7 @@ import pandas as pd
 from triage import __version__
 from triage.survival.cohorts import cohort_table
 from triage.survival.cox import CoxFitError, StratifiedCox, concordance_counting
+from triage.survival.curves import AGE_BANDS
 from triage.survival.observations import (
     COHORT_COLUMNS,
     COVARIATE_SOURCES,
@@ -59,12 +100,15 @@ from triage.survival.observations import (
 )
 
 FORMAT = "triage-fleet-risk"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 POOLED = "(pooled small cohorts)"
 MODEL_DIR = re.compile(r"^fleet-risk-v(\d+)-(\d{8}T\d{6}Z)$")
 #: A drive counts as in service at the held-out cut when seen within this many days before it.
 ACTIVE_DAYS = 7
-TAIL_FRACTION = 0.2
+#: Failures per baseline piece once an age band has plenty (module docstring).
+FAILURES_PER_PIECE = 25
+BASELINE_COLUMNS = ("stratum", "age_from_hours", "age_to_hours", "failures", "exposure_hours",
+                    "hazard_per_hour", "cumulative_hazard")
 
 
 class ModelFormatError(ValueError):
@@ -77,15 +121,20 @@ class FleetRiskModel:
     Configuration (``__init__``) is kept as given; ``fit`` learns attributes ending in ``_``:
 
     ``coef_``, ``se_`` (Series by covariate), ``center_``, ``features_``, ``strata_`` (cohort ->
-    stratum), ``baseline_`` (stratum, age_hours, cumulative_hazard), ``tail_`` (per stratum:
-    ``after_hours``, ``rate_per_hour``), ``cohort_table_``, ``exclusions_``, ``concordance_``
-    (in-sample, time-dependent Harrell), ``holdout_`` and ``calibration_`` (held-out time split;
-    ``None`` when the data window is shorter than two horizons), ``data_window_``.
+    stratum), ``baseline_`` (the piecewise-constant baseline, ``BASELINE_COLUMNS``, one row per
+    stratum and age piece), ``stratum_drives_``, ``cohort_table_``, ``exclusions_``,
+    ``concordance_`` (in-sample, time-dependent Harrell), ``holdout_`` and ``calibration_``
+    (held-out time split; ``None`` when the data window is shorter than two horizons),
+    ``data_window_``.
+
+    ``age_bands`` ((label, from_hours, to_hours), contiguous) and ``failures_per_piece`` (None:
+    never split a band) set the baseline's age pieces (module docstring).
     """
 
     def __init__(self, horizon_days: float = 30, by: Sequence[str] = ("model",), count_proactive: bool = True,
                  penalizer: float = 0.1, min_stratum_failures: int = 5, ties: str = "efron",
-                 holdout: bool = True):
+                 holdout: bool = True, age_bands: Sequence[Sequence] = AGE_BANDS,
+                 failures_per_piece: int | None = FAILURES_PER_PIECE):
         self.horizon_days = horizon_days
         self.by = by
         self.count_proactive = count_proactive
@@ -93,6 +142,16 @@ class FleetRiskModel:
         self.min_stratum_failures = min_stratum_failures
         self.ties = ties
         self.holdout = holdout
+        self.age_bands = age_bands
+        self.failures_per_piece = failures_per_piece
+
+    def config(self) -> dict:
+        """The ``__init__`` arguments, as saved in ``model.json``."""
+        return {"horizon_days": self.horizon_days, "by": list(self.by), "count_proactive": self.count_proactive,
+                "penalizer": self.penalizer, "min_stratum_failures": self.min_stratum_failures,
+                "ties": self.ties, "holdout": self.holdout,
+                "age_bands": [[str(label), float(lo), float(hi)] for label, lo, hi in self.age_bands],
+                "failures_per_piece": self.failures_per_piece}
 
     # -- configuration --------------------------------------------------------------------
     def _validated(self) -> None:
@@ -101,6 +160,11 @@ class FleetRiskModel:
             raise ValueError(f"horizon_days must be a positive number of days, got {self.horizon_days!r}")
         if self.min_stratum_failures < 1:
             raise ValueError("min_stratum_failures must be at least 1")
+        self.age_bands = _check_bands(self.age_bands)
+        if self.failures_per_piece is not None and not (
+                isinstance(self.failures_per_piece, int) and self.failures_per_piece >= 1):
+            raise ValueError(f"failures_per_piece must be a whole number >= 1 (or None: bands stay whole), "
+                             f"got {self.failures_per_piece!r}")
 
     def holdout_cut(self, first_taken_at: pd.Timestamp, last_taken_at: pd.Timestamp) -> pd.Timestamp | None:
         """Start of the held-out window: ``horizon_days`` before the end of the data (UTC midnight),
@@ -179,29 +243,14 @@ class FleetRiskModel:
         self.n_iter_ = cox.n_iter_
         self.concordance_ = concordance_counting(episodes["start_hours"], episodes["stop_hours"],
                                                  episodes["event"], X @ cox.coef_, strata)
-        self._set_baseline(cox, obs)
+        relative = np.exp((X - cox.center_) @ cox.coef_)
+        self.baseline_ = banded_baseline(episodes["start_hours"], episodes["stop_hours"], episodes["event"],
+                                         relative, strata, self.age_bands, self.failures_per_piece)
+        sizes = obs.drives["cohort"].map(self.strata_).fillna(POOLED).value_counts()
+        self.stratum_drives_ = {str(s): int(sizes.get(s, 0)) for s in self._baseline_strata()}
 
-    def _set_baseline(self, cox: StratifiedCox, obs: Observations) -> None:
-        drives = obs.drives.assign(stratum=obs.drives["cohort"].map(self.strata_).fillna(POOLED))
-        frames, tail, sizes = [], {}, {}
-        for stratum, group in drives.groupby("stratum"):
-            sizes[stratum] = int(len(group))
-            if stratum not in cox.baseline_:
-                continue
-            times, cumhaz = cox.baseline_[stratum]
-            youngest = float(group["entry_hours"].min())
-            oldest = float(group["exit_hours"].max())
-            ages = np.concatenate([[min(youngest, times[0])], times])
-            values = np.concatenate([[0.0], cumhaz])
-            m = len(times)
-            n_tail = max(1, math.ceil(TAIL_FRACTION * m))
-            j = m - n_tail  # knot index before the tail's first failure
-            span = max(oldest - ages[j], 1.0)
-            tail[stratum] = {"after_hours": float(ages[-1]), "rate_per_hour": float((values[-1] - values[j]) / span)}
-            frames.append(pd.DataFrame({"stratum": stratum, "age_hours": ages, "cumulative_hazard": values}))
-        self.baseline_ = pd.concat(frames, ignore_index=True)
-        self.tail_ = tail
-        self.stratum_drives_ = {s: n for s, n in sizes.items() if s in tail}
+    def _baseline_strata(self) -> list[str]:
+        return list(pd.unique(self.baseline_["stratum"]))
 
     # -- prediction -----------------------------------------------------------------------
     def _check_fitted(self) -> None:
@@ -209,15 +258,14 @@ class FleetRiskModel:
             raise ValueError("this FleetRiskModel is not fitted yet: call fit() or FleetRiskModel.load()")
 
     def cumulative_baseline(self, stratum: str, age_hours) -> np.ndarray:
-        """H0_s(age): interpolated baseline, continued at the tail rate past the last failure age."""
-        knots = self.baseline_[self.baseline_["stratum"] == stratum]
-        ages = knots["age_hours"].to_numpy(dtype=float)
-        values = knots["cumulative_hazard"].to_numpy(dtype=float)
-        age = np.asarray(age_hours, dtype=float)
-        tail = self.tail_[stratum]
-        inside = np.interp(age, ages, values, left=0.0)
-        beyond = values[-1] + tail["rate_per_hour"] * (age - tail["after_hours"])
-        return np.where(age > tail["after_hours"], beyond, inside)
+        """H0_s(age) = sum_j h_j |(a_j, a_j+1] n (0, age]| (module docstring); NaN stays NaN."""
+        pieces = self.baseline_[self.baseline_["stratum"] == stratum]
+        age_from = pieces["age_from_hours"].to_numpy(dtype=float)
+        hazard = pieces["hazard_per_hour"].to_numpy(dtype=float)
+        at_from = pieces["cumulative_hazard"].to_numpy(dtype=float)
+        age = np.clip(np.asarray(age_hours, dtype=float), 0.0, None)
+        j = np.clip(np.searchsorted(age_from, age, side="right") - 1, 0, len(age_from) - 1)
+        return at_from[j] + hazard[j] * (age - age_from[j])
 
     def predict_details(self, latest_state: pd.DataFrame, horizon_days: float | None = None) -> pd.DataFrame:
         """Per drive: cohort, stratum, age, relative hazard, baseline increment and probability."""
@@ -240,15 +288,16 @@ class FleetRiskModel:
         relative = np.exp((X - self.center_.to_numpy()) @ self.coef_.to_numpy())
         end = age + 24.0 * horizon
         increment = np.full(len(state), np.nan)
-        for s in self.tail_:
+        known = self._baseline_strata()
+        for s in known:
             rows = stratum == s
             if rows.any():
                 increment[rows] = self.cumulative_baseline(s, end[rows]) - self.cumulative_baseline(s, age[rows])
-        unknown = pd.isna(stratum) | ~np.isin(stratum.astype(str), list(self.tail_))
+        unknown = pd.isna(stratum) | ~np.isin(stratum.astype(str), known)
         if unknown.any():
-            weights = np.array([self.stratum_drives_[s] for s in self.tail_], dtype=float)
+            weights = np.array([self.stratum_drives_[s] for s in known], dtype=float)
             each = np.vstack([self.cumulative_baseline(s, end[unknown]) - self.cumulative_baseline(s, age[unknown])
-                              for s in self.tail_])
+                              for s in known])
             increment[unknown] = weights @ each / weights.sum()
         probability = 1.0 - np.exp(-np.clip(increment, 0, None) * relative)
         return pd.DataFrame({
@@ -283,9 +332,7 @@ class FleetRiskModel:
         from lifelines.utils import concordance_index
 
         train = observations(scan, removals, self.by, self.count_proactive, until=cut)
-        trial = FleetRiskModel(horizon_days=self.horizon_days, by=self.by, count_proactive=self.count_proactive,
-                               penalizer=self.penalizer, min_stratum_failures=self.min_stratum_failures,
-                               ties=self.ties, holdout=False)
+        trial = FleetRiskModel(**{**self.config(), "holdout": False})
         trial._validated()
         try:
             trial._fit_observations(train)
@@ -335,16 +382,12 @@ class FleetRiskModel:
             "format_version": FORMAT_VERSION,
             "triage_version": __version__,
             "fitted_at": self.fitted_at_,
-            "config": {"horizon_days": self.horizon_days, "by": list(self.by),
-                       "count_proactive": self.count_proactive, "penalizer": self.penalizer,
-                       "min_stratum_failures": self.min_stratum_failures, "ties": self.ties,
-                       "holdout": self.holdout},
+            "config": self.config(),
             "features": self.features_,
             "coefficients": {f: {"coef": float(self.coef_[f]), "se": float(self.se_[f]),
                                  "center": float(self.center_[f])} for f in self.features_},
             "strata": self.strata_,
             "stratum_drives": self.stratum_drives_,
-            "tail": self.tail_,
             "concordance": _num(self.concordance_),
             "holdout": self.holdout_,
             "data_window": self.data_window_,
@@ -377,6 +420,10 @@ class FleetRiskModel:
         if not isinstance(version, int) or version > FORMAT_VERSION:
             raise ModelFormatError(f"{meta_path}: format_version {version!r} is newer than this triage reads "
                                    f"({FORMAT_VERSION}); refit with 'triage fit' or upgrade triage")
+        if version < FORMAT_VERSION:
+            raise ModelFormatError(f"{meta_path}: format_version {version} was written by an older triage "
+                                   f"(interpolated baseline; this one reads {FORMAT_VERSION}); "
+                                   "refit with 'triage fit'")
         model = cls(**meta["config"])
         model._validated()
         model.features_ = list(meta["features"])
@@ -386,19 +433,115 @@ class FleetRiskModel:
         model.center_ = pd.Series({f: coefficients[f]["center"] for f in model.features_}, name="center", dtype=float)
         model.strata_ = meta["strata"]
         model.stratum_drives_ = meta["stratum_drives"]
-        model.tail_ = meta["tail"]
         model.concordance_ = meta["concordance"]
         model.holdout_ = meta["holdout"]
         model.data_window_ = meta["data_window"]
         model.fitted_at_ = meta["fitted_at"]
         model.n_iter_ = meta.get("n_iter")
         model.baseline_ = pd.read_parquet(path / "baseline.parquet")
+        missing = [c for c in BASELINE_COLUMNS if c not in model.baseline_.columns]
+        if missing:
+            raise ModelFormatError(f"{path / 'baseline.parquet'}: lacks column(s) {', '.join(missing)}")
         model.cohort_table_ = pd.read_parquet(path / "cohorts.parquet")
         model.exclusions_ = pd.read_parquet(path / "exclusions.parquet")
         calibration = path / "calibration.parquet"
         model.calibration_ = pd.read_parquet(calibration) if calibration.is_file() else None
         model.path_ = path
         return model
+
+
+def banded_baseline(start_hours, stop_hours, event, relative_hazard, strata=None,
+                    age_bands: Sequence[Sequence] = AGE_BANDS,
+                    failures_per_piece: int | None = FAILURES_PER_PIECE) -> pd.DataFrame:
+    """Piecewise-constant baseline hazard per stratum from (start, stop] rows (module docstring).
+
+    ``relative_hazard``: ``exp(beta . (x - centre))`` of each row (all ones without covariates).
+    ``failures_per_piece=None`` keeps the bands whole. Returns ``BASELINE_COLUMNS``, one row per
+    stratum and piece, pieces contiguous from age 0 to infinity; strata without a failure are left
+    out (there is no rate to shrink towards).
+    """
+    start = np.asarray(start_hours, dtype=float)
+    stop = np.asarray(stop_hours, dtype=float)
+    event = np.asarray(event, dtype=bool)
+    weight = np.asarray(relative_hazard, dtype=float)
+    strata = np.zeros(len(start), dtype=np.int64) if strata is None else np.asarray(strata, dtype=object)
+    inner_edges = np.array([band[1] for band in _check_bands(age_bands)[1:]], dtype=float)
+    frames = []
+    for stratum in pd.unique(strata):
+        rows = strata == stratum
+        failure_ages = np.sort(stop[rows & event])
+        if len(failure_ages) == 0:
+            continue
+        youngest, oldest = float(start[rows].min()), float(stop[rows].max())
+        edges = np.concatenate([[youngest], inner_edges[(inner_edges > youngest) & (inner_edges < oldest)], [oldest]])
+        # share_j: the piece's part of its band's one pseudo-failure (1 / pieces in the band)
+        edges, share_j = _split_crowded_bands(edges, failure_ages, failures_per_piece)
+        # D_j: a failure at age t belongs to the piece (a_j, a_j+1] holding it
+        piece = np.clip(np.searchsorted(edges, failure_ages, side="left") - 1, 0, len(edges) - 2)
+        D_j = np.bincount(piece, minlength=len(edges) - 1).astype(float)
+        at_edges = _weighted_hours_before(edges, start[rows], stop[rows], weight[rows])
+        E_j = np.clip(np.diff(at_edges), 0.0, None)  # no negative rounding residue in an empty piece
+        D, E = D_j.sum(), E_j.sum()
+        h_j = (D_j + share_j) / (E_j + share_j * E / D)
+        age_from = np.concatenate([[0.0], edges[1:-1]])
+        age_to = np.concatenate([edges[1:-1], [np.inf]])
+        # H0 at each piece's start; the last piece is open-ended
+        cumulative = np.concatenate([[0.0], np.cumsum(h_j[:-1] * (age_to[:-1] - age_from[:-1]))])
+        frames.append(pd.DataFrame({
+            "stratum": stratum, "age_from_hours": age_from, "age_to_hours": age_to,
+            "failures": D_j.astype(np.int64), "exposure_hours": E_j, "hazard_per_hour": h_j,
+            "cumulative_hazard": cumulative,
+        }))
+    if not frames:
+        return pd.DataFrame(columns=list(BASELINE_COLUMNS))
+    return pd.concat(frames, ignore_index=True)[list(BASELINE_COLUMNS)]
+
+
+def _split_crowded_bands(edges: np.ndarray, failure_ages: np.ndarray,
+                         failures_per_piece: int | None) -> tuple[np.ndarray, np.ndarray]:
+    """Cut each band holding D_b >= 2K failures into n_b = floor(D_b / K) equal-width pieces.
+
+    Returns the piece edges and each piece's 1 / n_b (its share of the band's pseudo-failure).
+    """
+    band = np.clip(np.searchsorted(edges, failure_ages, side="left") - 1, 0, len(edges) - 2)
+    D_b = np.bincount(band, minlength=len(edges) - 1)
+    pieces, shares = [edges[:1]], []
+    for lo, hi, d in zip(edges[:-1], edges[1:], D_b):
+        n = 1 if failures_per_piece is None else max(1, int(d) // failures_per_piece)
+        pieces.append(np.linspace(lo, hi, n + 1)[1:])
+        shares.append(np.full(n, 1.0 / n))
+    return np.concatenate(pieces), np.concatenate(shares)
+
+
+def _weighted_hours_before(ages: np.ndarray, start: np.ndarray, stop: np.ndarray, weight: np.ndarray) -> np.ndarray:
+    """W(t) = sum_i w_i |(start_i, stop_i] n (-inf, t]| = sum_i w_i [(t - start_i)+ - (t - stop_i)+], at each t."""
+    return _ramp_sum(ages, start, weight) - _ramp_sum(ages, stop, weight)
+
+
+def _ramp_sum(ages: np.ndarray, points: np.ndarray, weight: np.ndarray) -> np.ndarray:
+    """sum_i w_i (t - p_i)+ at each t in ``ages``: t * sum(w, p < t) - sum(w p, p < t)."""
+    order = np.argsort(points, kind="stable")
+    p, w = points[order], weight[order]
+    w_below = np.concatenate([[0.0], np.cumsum(w)])
+    wp_below = np.concatenate([[0.0], np.cumsum(w * p)])
+    k = np.searchsorted(p, ages, side="left")
+    return ages * w_below[k] - wp_below[k]
+
+
+def _check_bands(age_bands) -> tuple[tuple[str, float, float], ...]:
+    """(label, from_hours, to_hours) bands, each starting where the previous one ends."""
+    try:
+        bands = tuple((str(label), float(lo), float(hi)) for label, lo, hi in age_bands)
+    except (TypeError, ValueError):
+        raise ValueError("age_bands must be (label, from_hours, to_hours) triples") from None
+    if not bands:
+        raise ValueError("age_bands needs at least one band")
+    for (label, lo, hi), following in zip(bands, bands[1:] + (None,)):
+        if not lo < hi:
+            raise ValueError(f"age band {label!r}: from_hours must be below to_hours")
+        if following is not None and following[1] != hi:
+            raise ValueError(f"age band {following[0]!r} must start where {label!r} ends ({hi:g} h)")
+    return bands
 
 
 def calibration_table(predicted: np.ndarray, failed: np.ndarray, groups: int = 10) -> pd.DataFrame:
@@ -444,5 +587,5 @@ def _num(value) -> float | None:
     return None if value is None or (isinstance(value, float) and math.isnan(value)) else float(value)
 
 
-__all__ = ["FleetRiskModel", "latest_model", "calibration_table", "ModelFormatError", "POOLED",
+__all__ = ["FleetRiskModel", "latest_model", "banded_baseline", "calibration_table", "ModelFormatError", "POOLED",
            "COHORT_COLUMNS", "COVARIATE_SOURCES"]
