@@ -49,7 +49,7 @@ MODELS = [
 ]
 # log hazard ratios the simulation uses (the fit should find them again, roughly)
 BETA = {"any_pending": 1.6, "log_pending": 0.2, "any_reallocated": 0.5, "any_uncorrectable": 1.0,
-        "temperature_step": 0.15}
+        "temperature_band": 0.3}
 
 
 # -- generating the store ---------------------------------------------------------------------
@@ -102,7 +102,7 @@ def generate_store(root: Path, n_drives: int, days: int, seed: int = 7) -> dict:
                   uncorrectable, minute)
         log_hr = (BETA["any_pending"] * (pending > 0) + BETA["log_pending"] * np.log1p(pending)
                   + BETA["any_reallocated"] * (reallocated > 0) + BETA["any_uncorrectable"] * (uncorrectable > 0)
-                  + BETA["temperature_step"] * np.round((temperature - 40) / 5))
+                  + BETA["temperature_band"] * np.digitize(temperature, (45.0, 55.0)))
         increment = ((age + 24) / scale) ** shape - (age / scale) ** shape
         fails = present & (rng.uniform(size=n_drives) < 1 - np.exp(-increment * np.exp(log_hr)))
         retires = present & ~fails & (retire_day == day)

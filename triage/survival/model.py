@@ -100,7 +100,7 @@ from triage.survival.observations import (
 )
 
 FORMAT = "triage-fleet-risk"
-FORMAT_VERSION = 2
+FORMAT_VERSION = 3  # 3: temperature_band replaced temperature_step
 POOLED = "(pooled small cohorts)"
 MODEL_DIR = re.compile(r"^fleet-risk-v(\d+)-(\d{8}T\d{6}Z)$")
 #: A drive counts as in service at the held-out cut when seen within this many days before it.
@@ -348,6 +348,10 @@ class FleetRiskModel:
         if at_cut.empty:
             return
         predicted = trial.predict_fail_probability(at_cut).to_numpy()
+        scored = np.isfinite(predicted)  # a drive without power-on hours cannot be scored
+        at_cut, predicted = at_cut[scored], predicted[scored]
+        if at_cut.empty:
+            return
         later = outcome.loc[at_cut["serial"]]
         exit_days = ((later["exit_at"] - cut).dt.total_seconds() / 86400).to_numpy()
         failed = later["event"].to_numpy(dtype=bool) & (exit_days < float(self.horizon_days))
@@ -422,7 +426,7 @@ class FleetRiskModel:
                                    f"({FORMAT_VERSION}); refit with 'triage fit' or upgrade triage")
         if version < FORMAT_VERSION:
             raise ModelFormatError(f"{meta_path}: format_version {version} was written by an older triage "
-                                   f"(interpolated baseline; this one reads {FORMAT_VERSION}); "
+                                   f"(other baseline or covariates; this one reads {FORMAT_VERSION}); "
                                    "refit with 'triage fit'")
         model = cls(**meta["config"])
         model._validated()

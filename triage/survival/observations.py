@@ -51,8 +51,7 @@ REMOVAL_COLUMNS = ("serial", "removed_at", "reason")
 
 #: Covariates for the Cox model, derived in ``covariate_features``. Counts enter as log1p
 #: (a drive with 1,000 reallocated sectors is not 1,000 times worse than one with 1) and as
-#: "has any" flags (the first reallocation is the news); temperature in 5 degC steps from 40 degC,
-#: coarse enough that nightly wobble does not split a drive's history into one row per night.
+#: "has any" flags (the first reallocation is the news); temperature in bands (below).
 FEATURES = (
     "any_reallocated",
     "log_reallocated",
@@ -63,10 +62,15 @@ FEATURES = (
     "log_command_timeouts",
     "nvme_warning",
     "nvme_spare_low",
-    "temperature_step",
+    "temperature_band",
 )
-TEMPERATURE_REFERENCE_C = 40.0
-TEMPERATURE_STEP_C = 5.0
+#: Temperature enters as a band: 0 below 45 degC (the reference), 1 from 45, 2 from 55 degC.
+#: Nightly readings wobble by a degree or two; every band edge a drive sits near splits its
+#: history at each crossing, so the edges are few and at the warm end, where heat matters:
+#: with 5-degree steps nine episodes in ten were temperature wobble (benchmarks/fit.py), with
+#: these edges about one in two. 55 degC is about where disk operating ranges end (from
+#: memory); the edges are common practice, no source.
+TEMPERATURE_BAND_EDGES_C = (45.0, 55.0)
 
 #: Power-on hours may run ahead of the wall clock by this much between two snapshots before the
 #: drive is excluded: +2 h for whole-hour counters and capture-host clock skew, +1 % for clock
@@ -110,9 +114,8 @@ def covariate_features(frame: pd.DataFrame) -> pd.DataFrame:
         temperature = pd.to_numeric(frame["temperature_c"], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     else:
         temperature = np.full(len(frame), np.nan)
-    # A missing reading sits at the reference (contributes nothing) rather than dropping the row.
-    step = np.round((np.nan_to_num(temperature, nan=TEMPERATURE_REFERENCE_C) - TEMPERATURE_REFERENCE_C)
-                    / TEMPERATURE_STEP_C)
+    # A missing reading sits in the reference band (contributes nothing) rather than dropping the row.
+    band = np.digitize(np.nan_to_num(temperature, nan=-np.inf), TEMPERATURE_BAND_EDGES_C)
     out = {
         "any_reallocated": (reallocated > 0) | (_count(frame, "reallocation_events") > 0),
         "log_reallocated": np.log1p(reallocated),
@@ -123,7 +126,7 @@ def covariate_features(frame: pd.DataFrame) -> pd.DataFrame:
         "log_command_timeouts": np.log1p(_count(frame, "command_timeouts")),
         "nvme_warning": _count(frame, "nvme_critical_warning") > 0,
         "nvme_spare_low": spare_low,
-        "temperature_step": step,
+        "temperature_band": band,
     }
     return pd.DataFrame({k: np.asarray(v, dtype=np.float32) for k, v in out.items()}, index=frame.index)
 
@@ -195,37 +198,40 @@ def _ns(stamps: pd.Series) -> np.ndarray:
 
 
 def _reduce_chunk(frame: pd.DataFrame, chunk: int, problems: dict[str, str]) -> pd.DataFrame:
-    """Keep each drive's first/last row in this chunk and every row where its covariates changed."""
-    frame = frame[frame["serial"].notna()]
-    poh = pd.to_numeric(frame["power_on_hours"], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
-    frame = frame[~np.isnan(poh)]
-    poh = poh[~np.isnan(poh)]
-    if frame.empty:
-        return frame.assign(chunk=pd.Series(dtype=np.int32))
-    codes, _ = pd.factorize(frame["serial"])
-    stamp = _ns(frame["taken_at"])
-    order = np.lexsort((stamp, codes))
-    frame = frame.iloc[order]
-    codes, stamp, poh = codes[order], stamp[order], poh[order]
-    serials = frame["serial"].to_numpy()
+    """Keep each drive's first/last row in this chunk and every row where its covariates changed.
 
-    same = np.zeros(len(frame), dtype=bool)
+    Works on row numbers: the chunk is sorted as an index array and only the kept rows (a
+    fraction of a nightly history) are ever copied out of the frame.
+    """
+    poh_all = pd.to_numeric(frame["power_on_hours"], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+    usable = np.flatnonzero(frame["serial"].notna().to_numpy() & ~np.isnan(poh_all))
+    if len(usable) == 0:
+        return frame.iloc[:0].assign(chunk=pd.Series(dtype=np.int32))
+    serials_all = frame["serial"].to_numpy()
+    codes, _ = pd.factorize(serials_all[usable])
+    stamp = _ns(frame["taken_at"])[usable]
+    within = np.lexsort((stamp, codes))
+    order = usable[within]  # frame row numbers, by drive then time
+    codes, stamp, poh = codes[within], stamp[within], poh_all[order]
+    serials = serials_all[order]
+
+    same = np.zeros(len(order), dtype=bool)
     same[1:] = codes[1:] == codes[:-1]
     _flag_counter_problems(serials, same, stamp, poh, problems)
 
-    features = covariate_features(frame)
-    values = features.to_numpy()
-    changed = np.ones(len(frame), dtype=bool)
+    values = covariate_features(frame)[list(FEATURES)].to_numpy()[order]
+    changed = np.ones(len(order), dtype=bool)
     changed[1:] = np.any(values[1:] != values[:-1], axis=1) | ~same[1:]
-    last = np.ones(len(frame), dtype=bool)
+    last = np.ones(len(order), dtype=bool)
     last[:-1] = ~same[1:]
     first = ~same
     keep = changed | last
-    kept = frame.loc[:, [c for c in SNAPSHOT_COLUMNS if c in frame.columns]].iloc[keep].copy()
+    kept = frame.iloc[order[keep], [frame.columns.get_loc(c) for c in SNAPSHOT_COLUMNS if c in frame.columns]]
+    kept = kept.reset_index(drop=True)
     kept["power_on_hours"] = poh[keep]
     kept["taken_at"] = pd.to_datetime(kept["taken_at"], utc=True)
-    for column in FEATURES:
-        kept[column] = features[column].to_numpy()[keep]
+    for j, column in enumerate(FEATURES):
+        kept[column] = values[keep, j]
     kept["chunk"] = np.int32(chunk)
     kept["chunk_first"] = first[keep]
     kept["chunk_last"] = last[keep]
@@ -261,13 +267,13 @@ def scan_frame(snapshots: pd.DataFrame, cut: pd.Timestamp | None = None) -> Scan
         raise ValueError(f"snapshots lack column(s) {', '.join(missing)}")
     taken = pd.to_datetime(snapshots["taken_at"], utc=True)
     if cut is None:
-        pieces = [snapshots]
+        pieces = [(0, snapshots)]
     else:
-        pieces = [snapshots[(taken < cut).to_numpy()], snapshots[(taken >= cut).to_numpy()]]
+        pieces = [(0, snapshots[(taken < cut).to_numpy()]), (1, snapshots[(taken >= cut).to_numpy()])]
     return _scan_pieces(iter(pieces))
 
 
-def scan_store(store, chunk_days: int = 30, cut: pd.Timestamp | None = None,
+def scan_store(store, chunk_days: int = 7, cut: pd.Timestamp | None = None,
                progress: Callable[[int, int], None] | None = None) -> Scan:
     """Scan the store's snapshots in chunks of ``chunk_days`` days (one boundary falls on ``cut``)."""
     days = store.days("snapshots")
@@ -286,20 +292,26 @@ def scan_store(store, chunk_days: int = 30, cut: pd.Timestamp | None = None,
         for i, (lo, hi) in enumerate(windows):
             if progress:
                 progress(i, len(windows))
-            yield store.read("snapshots", columns=list(SNAPSHOT_COLUMNS), since=lo.to_pydatetime(),
-                             until=hi.to_pydatetime())
+            segment = int(cut is not None and lo >= cut)  # the held-out side is its own segment
+            yield segment, store.read("snapshots", columns=list(SNAPSHOT_COLUMNS), since=lo.to_pydatetime(),
+                                      until=hi.to_pydatetime())
         if progress:
             progress(len(windows), len(windows))
 
     return _scan_pieces(pieces())
 
 
-def _scan_pieces(pieces: Iterable[pd.DataFrame]) -> Scan:
+def _scan_pieces(pieces: Iterable[tuple[int, pd.DataFrame]]) -> Scan:
+    """Reduce (segment, chunk) pieces as they come: each chunk is boiled down, then merged with
+    what its segment kept so far and boiled down again, so memory holds one chunk plus about a
+    row per drive and covariate change -- never the history. A segment (the training and the
+    held-out side of a time cut) keeps each drive's first and last row at its own edges."""
     problems: dict[str, str] = {}
     seen: set = set()
-    kept, rows_read = [], 0
+    segments: dict[int, pd.DataFrame] = {}
+    rows_read = 0
     first = last = None
-    for chunk, piece in enumerate(pieces):
+    for segment, piece in pieces:
         if piece.empty:
             continue
         rows_read += len(piece)
@@ -307,8 +319,12 @@ def _scan_pieces(pieces: Iterable[pd.DataFrame]) -> Scan:
         taken = pd.to_datetime(piece["taken_at"], utc=True)
         first = taken.min() if first is None else min(first, taken.min())
         last = taken.max() if last is None else max(last, taken.max())
-        kept.append(_reduce_chunk(piece, chunk, problems))
+        reduced = _reduce_chunk(piece, segment, problems)
         del piece
+        if segment in segments:
+            reduced = _reduce_chunk(pd.concat([segments[segment], reduced], ignore_index=True), segment, problems)
+        segments[segment] = reduced
+    kept = [segments[k] for k in sorted(segments)]
     if not kept:
         return Scan(rows=pd.DataFrame(columns=[*SNAPSHOT_COLUMNS, *FEATURES]))
     rows = pd.concat(kept, ignore_index=True)
