@@ -8,9 +8,10 @@ A drive first seen at 20,000 hours tells us nothing about hours 0-20,000: had it
 would never have seen it. Counting it from hour zero inflates survival at young ages
 (docs/survival.md shows by how much).
 
-Reading a large store happens in time chunks, and each chunk is boiled down at once to the rows
-that matter (first and last snapshot of each drive in the chunk, and the snapshots where its
-covariates changed), so a 9-million-row table never has to sit in memory whole:
+Reading a large store happens in week-long chunks, and each chunk is boiled down at once to the
+rows that matter (each drive's first and last snapshot, and the snapshots where its covariates
+changed) and merged into what was kept so far, so a 9-million-row table never has to sit in
+memory whole:
 
     scan_frame / scan_store  ->  Scan (reduced rows + data-quality findings)
     observations(scan, removals, ...)  ->  Observations (per-drive table, episodes, exclusions)
