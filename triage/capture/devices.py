@@ -34,7 +34,7 @@ _NVME_NAMESPACE = re.compile(r"^nvme\d+n\d+$")
 
 @dataclass(frozen=True)
 class Target:
-    """One device node to read and how to talk to it."""
+    """One device node to read and the bus its commands go over."""
 
     path: str
     bus: str  # "ata" | "nvme"
