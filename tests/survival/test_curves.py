@@ -124,3 +124,28 @@ def test_at_risk_counts_only_drives_that_entered_before_the_failure_age():
     row = curves.table.set_index("age_hours").loc[5.0]
     assert row["at_risk"] == 3
     assert row["survival"] == pytest.approx(1 - 1 / 3)
+
+
+def test_curve_starts_where_enough_drives_are_at_risk_and_skips_an_unwatched_gap():
+    # Three new replacement drives at 0-300 h (one fails at 120 h) beside forty drives bought at
+    # 40,000-41,000 h: no drive is watched between, so survival cannot be carried across; the
+    # curve covers the side with the most drive-hours, from the first age with 10 at risk.
+    rng = np.random.default_rng(4)
+    old_entry = np.sort(rng.uniform(40_000, 41_000, 40))
+    old_exit = old_entry + rng.uniform(1_000, 3_000, 40)
+    entry = np.r_[[0.0, 10.0, 20.0], old_entry]
+    exit_ = np.r_[[120.0, 300.0, 300.0], old_exit]
+    event = np.r_[[True, False, False], rng.uniform(size=40) < 0.2]
+    curves = survival_curves(entry, exit_, event)
+    start = curves.youngest_entry_hours
+    assert start == old_entry[9]  # the tenth old drive's entry: ten at risk just after it
+    first = curves.table.iloc[0]
+    assert first["survival"] == 1.0 and first["at_risk"] == 10
+    # the rest equals the delayed-entry product-limit estimate of statsmodels on that side,
+    # conditional on reaching the start age (independent implementation)
+    from statsmodels.duration.survfunc import SurvfuncRight
+
+    keep = (entry >= 40_000) & (exit_ > start)
+    theirs = SurvfuncRight(exit_[keep], event[keep], entry=np.maximum(entry[keep], start))
+    ours = curves.table.set_index("age_hours")["survival"].iloc[1:]
+    np.testing.assert_allclose(ours.to_numpy(), theirs.surv_prob[np.isin(theirs.surv_times, ours.index)])

@@ -164,7 +164,8 @@ def render_survival(report, fmt: str, out: TextIO | None = None) -> None:
     if len(curve) > TABLE_CURVE_ROWS:
         picks = sorted(set(round(i * (len(curve) - 1) / (TABLE_CURVE_ROWS - 1)) for i in range(TABLE_CURVE_ROWS)))
         shown = curve.iloc[picks]
-    title = "Survival by age (Kaplan-Meier, delayed entry)"
+    start_years = report.curves.youngest_entry_hours / HOURS_PER_YEAR
+    title = f"Survival by age (Kaplan-Meier, delayed entry), given survival to {start_years:.2f} years"
     if len(shown) < len(curve):
         title += f": {len(shown)} of {len(curve)} failure ages; --format json has all"
     grid = Table(title=title, title_justify="left")
@@ -199,7 +200,7 @@ def plot_survival(report, path: Path) -> Path:
                 color="tab:orange", linestyle="--",
                 label=f"Weibull shape {w.shape:.2f}, scale {w.scale / HOURS_PER_YEAR:.1f} y")
     ax.set_xlabel("age (power-on years)")
-    ax.set_ylabel("survival, given alive at the youngest entry age")
+    ax.set_ylabel(f"survival, given alive at {report.curves.youngest_entry_hours / HOURS_PER_YEAR:.2f} years")
     ax.set_title(f"{report.cohort}: {report.drives} drives, {report.failures} failures")
     ax.grid(alpha=0.3)
     ax.legend(loc="lower left")

@@ -82,7 +82,7 @@ class SurvivalReport:
     curves: Curves
     bands: pd.DataFrame
     weibull: WeibullFit
-    weibull_curve: pd.DataFrame  # age_hours, survival (conditional on the youngest entry age)
+    weibull_curve: pd.DataFrame  # age_hours, survival (conditional on the curve's start age)
     datasheet_afr: float | None = None
     mttf_hours: float | None = None
 
@@ -109,10 +109,10 @@ def survival_report(obs: Observations, cohort: str, mttf_hours: float | None = N
     entry, exit_, event = usable["entry_hours"], usable["exit_hours"], usable["event"]
     curves = survival_curves(entry, exit_, event, alpha)
     fit = fit_weibull(entry, exit_, event, alpha)
-    if len(usable):
-        ages = np.linspace(float(entry.min()), float(exit_.max()), curve_points)
-        weibull_curve = pd.DataFrame({"age_hours": ages,
-                                      "survival": fit.survival(ages, given_hours=float(entry.min()))})
+    if len(usable) and len(curves.table):
+        start = curves.youngest_entry_hours  # the Weibull drawn on the curve's terms: given that age
+        ages = np.linspace(start, float(curves.table["age_hours"].max()), curve_points)
+        weibull_curve = pd.DataFrame({"age_hours": ages, "survival": fit.survival(ages, given_hours=start)})
     else:
         weibull_curve = pd.DataFrame({"age_hours": [], "survival": []})
     return SurvivalReport(

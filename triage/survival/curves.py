@@ -9,9 +9,16 @@ the fleet at age t_i, which is the whole point: a drive installed at 20,000 h is
 at 5,000 h. Both come from lifelines (``entry=``); the intervals are lifelines' pointwise 95 %
 ones (log(-log) transform for S, log transform for H), not simultaneous bands.
 
-The curve starts at 1 at the youngest entry age: with delayed entry it estimates survival
-*conditional on reaching that age*. Where few drives are at risk (young ages in a fleet bought
-second-hand, the oldest ages everywhere) it is noisy; the ``at_risk`` column says so.
+With delayed entry the curve estimates survival *conditional on reaching its start age*, and
+it cannot start where almost no drive is at risk: in a fleet bought at four to seven years, one
+new replacement drive failing at 300 hours is a risk set of one, the product-limit estimate drops
+to 0 there and stays 0 for every older age (Klein & Moeschberger, 2nd ed., 4.6, note on small
+risk sets under left truncation; from memory). So the curve starts at the youngest age with at
+least ``MIN_AT_RISK`` drives at risk, conditional on reaching it; drives that left before it are
+not in the curve (they still count in the AFR and the age bands). Where no drive at all was
+watched over some ages (new replacements beside drives bought old), the curve covers the side
+with the most drive-hours. Where few drives are at risk (the oldest ages everywhere) it is still
+noisy; the ``at_risk`` column says so.
 
 Hazard by age band (a piecewise-constant hazard, the maximum-likelihood estimate under left
 truncation and right censoring):
@@ -43,16 +50,49 @@ AGE_BANDS = (
 )
 
 
+#: The curve starts where at least this many drives are at risk (common practice, no source).
+MIN_AT_RISK = 10
+
+
 @dataclass
 class Curves:
     """Survival / cumulative hazard at each failure age (plus the first age), ready to print."""
 
     table: pd.DataFrame  # age_hours, survival, survival_low, survival_high, at_risk, failures,
     #                     cumulative_hazard, cumulative_hazard_low, cumulative_hazard_high
-    youngest_entry_hours: float
+    youngest_entry_hours: float  # the start age: the curve is conditional on reaching it
 
 
-def survival_curves(entry_hours, exit_hours, event, alpha: float = 0.05) -> Curves:
+def _widest_age_range(entry: np.ndarray, exit_: np.ndarray) -> tuple[float, float]:
+    """The stretch of ages with someone at risk throughout that holds the most drive-hours.
+
+    Ages nobody was watched at split the cohort (new replacements at 0-3,000 h beside drives
+    bought at five years): survival across such a gap cannot be estimated, since no drive
+    links the two sides. The curve covers one side; the others still count in AFR and bands.
+    """
+    order = np.argsort(entry, kind="stable")
+    starts, ends = entry[order], exit_[order]
+    reach = np.maximum.accumulate(ends)
+    # a new stretch begins where a drive enters at or after every earlier drive has left
+    new = np.r_[True, starts[1:] >= reach[:-1]]
+    label = np.cumsum(new) - 1
+    hours = np.bincount(label, weights=ends - starts)
+    best = int(np.argmax(hours))
+    return float(starts[label == best].min()), float(ends[label == best].max())
+
+
+def _start_age(entry: np.ndarray, exit_: np.ndarray, min_at_risk: int) -> float:
+    """The youngest entry age with at least ``min_at_risk`` drives at risk just after it
+    (#{entry <= a < exit}), or the one with the largest risk set if none has that many."""
+    candidates = np.unique(entry)
+    at_risk = (np.searchsorted(np.sort(entry), candidates, side="right")
+               - np.searchsorted(np.sort(exit_), candidates, side="right"))
+    enough = np.flatnonzero(at_risk >= min(min_at_risk, at_risk.max()))
+    return float(candidates[enough[0]])
+
+
+def survival_curves(entry_hours, exit_hours, event, alpha: float = 0.05,
+                    min_at_risk: int = MIN_AT_RISK) -> Curves:
     """Kaplan-Meier and Nelson-Aalen with delayed entry (lifelines), at each failure age."""
     from lifelines import KaplanMeierFitter, NelsonAalenFitter
 
@@ -65,13 +105,19 @@ def survival_curves(entry_hours, exit_hours, event, alpha: float = 0.05) -> Curv
                "cumulative_hazard", "cumulative_hazard_low", "cumulative_hazard_high"]
     if len(entry) == 0:
         return Curves(pd.DataFrame(columns=columns), float("nan"))
+    # the age range the curve can cover, then condition on reaching its start age
+    lo, hi = _widest_age_range(entry, exit_)
+    inside = (entry >= lo) & (exit_ <= hi)
+    entry, exit_, event = entry[inside], exit_[inside], event[inside]
+    start = _start_age(entry, exit_, min_at_risk)
+    alive = exit_ > start
+    entry, exit_, event = np.maximum(entry[alive], start), exit_[alive], event[alive]
     km = KaplanMeierFitter(alpha=alpha).fit(exit_, event, entry=entry)
     # the classic estimator d/Y at tied ages (lifelines would otherwise split ties as 1/Y + 1/(Y-1) ...)
     na = NelsonAalenFitter(alpha=alpha, nelson_aalen_smoothing=False).fit(exit_, event, entry=entry)
     events = km.event_table
     # rows where someone failed are the only ages where the curves move
     ages = events.index[events["observed"].to_numpy() > 0].to_numpy(dtype=float)
-    start = float(entry.min())
     ages = np.concatenate([[start], ages[ages > start]])
     survival = km.survival_function_.iloc[:, 0].reindex(ages, method="ffill").fillna(1.0)
     band = km.confidence_interval_.reindex(ages, method="ffill")
@@ -81,6 +127,7 @@ def survival_curves(entry_hours, exit_hours, event, alpha: float = 0.05) -> Curv
     # counts a drive entering exactly at t, which whole-hour entry ages make common.)
     at_risk = pd.Series(np.searchsorted(np.sort(entry), ages, side="left")
                         - np.searchsorted(np.sort(exit_), ages, side="left"), index=ages)
+    at_risk.iloc[0] = int(np.sum((entry <= start) & (exit_ > start)))  # at risk just after the start
     failures = events["observed"].reindex(ages).fillna(0)
     table = pd.DataFrame({
         "age_hours": ages,
