@@ -338,14 +338,23 @@ def rules_list(
     elif fmt == "json":
         typer.echo(json.dumps(table.to_dict(orient="records"), indent=2))
     else:
+        console = stdout_console()
+        # narrow terminals get the title under the id; the sources are in --format csv/json
+        wide = console.width >= 140
         shown = Table(show_lines=False)
-        for column in ("id", "severity", "category", "status"):
+        shown.add_column("id" if wide else "id / title", overflow="fold", ratio=2)
+        for column in ("severity", "category", "status"):
             shown.add_column(column, no_wrap=True)
-        shown.add_column("title", overflow="fold", ratio=1)
-        shown.add_column("source", overflow="fold", ratio=2)
+        if wide:
+            shown.add_column("title", overflow="fold", ratio=2)
+            shown.add_column("source", overflow="fold", ratio=3)
         for row in table.itertuples(index=False):
-            shown.add_row(*(escape(str(getattr(row, c))) for c in ("id", "severity", "category", "status", "title", "source")))
-        stdout_console().print(shown)
+            cells = [escape(str(getattr(row, c))) for c in ("id", "severity", "category", "status", "title", "source")]
+            if wide:
+                shown.add_row(*cells)
+            else:
+                shown.add_row(f"{cells[0]}\n[dim]{cells[4]}[/dim]", *cells[1:4])
+        console.print(shown)
     if ruleset.errors:
         raise typer.Exit(int(Exit.FAILURE))
 
