@@ -36,6 +36,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from triage.store.schema import REMOVALS, SNAPSHOTS
+from triage.survival.observations import TEMPERATURE_BAND_EDGES_C
 
 START = pd.Timestamp("2026-01-01T02:00:00Z")
 # invented models: (name, bus, capacity, rpm, Weibull shape, Weibull scale in hours)
@@ -72,7 +73,6 @@ def generate_store(root: Path, n_drives: int, days: int, seed: int = 7) -> dict:
     pending = np.zeros(n_drives)
     uncorrectable = np.zeros(n_drives)
     pending_onset = np.where(rng.uniform(size=n_drives) < 0.04, rng.integers(0, days, n_drives), 10**9)
-    poh_offset = np.zeros(n_drives)  # for the few counters that misbehave
     backwards_day = np.where(rng.uniform(size=n_drives) < 0.0005, rng.integers(1, days, n_drives), -1)
     minutes = rng.uniform(size=n_drives) < 0.0002
     retire_day = np.where(rng.uniform(size=n_drives) < 0.005, rng.integers(1, days, n_drives), 10**9)
@@ -102,7 +102,7 @@ def generate_store(root: Path, n_drives: int, days: int, seed: int = 7) -> dict:
                   uncorrectable, minute)
         log_hr = (BETA["any_pending"] * (pending > 0) + BETA["log_pending"] * np.log1p(pending)
                   + BETA["any_reallocated"] * (reallocated > 0) + BETA["any_uncorrectable"] * (uncorrectable > 0)
-                  + BETA["temperature_band"] * np.digitize(temperature, (45.0, 55.0)))
+                  + BETA["temperature_band"] * np.digitize(temperature, TEMPERATURE_BAND_EDGES_C))
         increment = ((age + 24) / scale) ** shape - (age / scale) ** shape
         fails = present & (rng.uniform(size=n_drives) < 1 - np.exp(-increment * np.exp(log_hr)))
         retires = present & ~fails & (retire_day == day)

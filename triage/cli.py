@@ -140,12 +140,13 @@ def demo(
 
 def _print_cautions(result) -> None:
     """Degraded groups, on stderr: advice that could cost data defers to the site's procedure."""
+    from triage.risk.score import DEGRADED_CAUTION  # the same words as each member's action
+
     groups = result.groups
     if not len(groups):
         return
     for row in groups[groups["degraded"]].itertuples(index=False):
-        typer.echo(f"caution: group {row.group} is degraded ({row.lost} member(s) lost): do not pull a second "
-                   "drive from it before the rebuild finishes; follow the site's change procedure", err=True)
+        typer.echo(f"caution: {DEGRADED_CAUTION.format(group=row.group, lost=row.lost)}", err=True)
 
 
 # -- risk: rank, tickets, nightly (triage/risk, triage/report/rank.py, triage/report/tickets.py) --

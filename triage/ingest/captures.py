@@ -115,9 +115,8 @@ def read_file(path: Path) -> tuple[list[bytes], LineError | None]:
         data = raw
     lines = data.split(b"\n")
     last = lines.pop()  # after the final newline: empty, or a line without its newline
-    if last.strip():
-        if error is None:
-            lines.append(last)  # a last line without a newline is still a line
+    if last.strip() and error is None:
+        lines.append(last)  # a last line without a newline is still a line (unless cut off)
     if error is not None:
         return lines, LineError(None, f"file unreadable after line {len(lines)}: {error}")
     return lines, None
@@ -186,8 +185,7 @@ def parse_capture_files(paths: list[Path], workers: int | None = None) -> Captur
     with ProcessPoolExecutor(max_workers=len(groups), mp_context=context) as pool:
         parts = list(pool.map(_parse_group, groups))
     return CaptureBatch(
-        snapshots=pd.concat([p.snapshots for p in parts if len(p.snapshots)], ignore_index=True)
-        if any(len(p.snapshots) for p in parts) else pd.DataFrame(),
+        snapshots=_concat_frames([p.snapshots for p in parts]),
         attributes=_concat_tables([p.attributes for p in parts]),
         rejected=[r for p in parts for r in p.rejected],
         lines=sum(p.lines for p in parts),
@@ -233,11 +231,16 @@ def _parse_group(paths: list[Path]) -> CaptureBatch:
         if attrs is not None:
             attributes.append(attrs)
     return CaptureBatch(
-        snapshots=pd.concat(snapshots, ignore_index=True) if snapshots else pd.DataFrame(),
+        snapshots=_concat_frames(snapshots),
         attributes=_concat_tables(attributes),
         rejected=rejected + _with_line_texts(late),
         lines=lines,
     )
+
+
+def _concat_frames(frames: list[pd.DataFrame]) -> pd.DataFrame:
+    frames = [f for f in frames if len(f)]
+    return pd.concat(frames, ignore_index=True) if frames else pd.DataFrame()
 
 
 def _concat_tables(tables: list) -> pa.Table | pd.DataFrame:

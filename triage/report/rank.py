@@ -53,7 +53,7 @@ def render_csv(drives: pd.DataFrame, out: TextIO | None = None) -> None:
 WIDE_COLUMNS = 140
 
 
-def _cells(d, p_head: str) -> dict[str, str]:
+def _cells(d) -> dict[str, str]:
     """The text of one drive's cells (rich markup, firmware-derived strings escaped)."""
     sev = d.severity or "-"
     where = f"{escape(str(d.host or '?'))}/{escape(str(d.slot or '?'))}"
@@ -80,7 +80,7 @@ def render_table(drives: pd.DataFrame, horizon_days: float | None) -> None:
         table.add_column("evidence", ratio=3)
         table.add_column("what to do", ratio=2)
         for d in drives.itertuples(index=False):
-            c = _cells(d, p_head)
+            c = _cells(d)
             where = c["where"] + (f"\n{c['group']}" if c["group"] else "")
             table.add_row(c["rank"], where, c["drive"], c["age"], c["p"], c["severity"], c["evidence"], c["action"])
     else:
@@ -89,7 +89,7 @@ def render_table(drives: pd.DataFrame, horizon_days: float | None) -> None:
         table.add_column("risk", no_wrap=True)
         table.add_column("evidence -> what to do", ratio=1)
         for d in drives.itertuples(index=False):
-            c = _cells(d, p_head)
+            c = _cells(d)
             where = "\n".join(x for x in (c["where"], c["group"], c["drive"]) if x)
             risk = f"{c['severity']}\n{p_head}: {c['p']}\nage {c['age'] or '?'}"
             table.add_row(c["rank"], where, risk, f"{c['evidence']}\n[bold]-> {c['action']}[/bold]")

@@ -52,26 +52,15 @@ def model_age_days(store, now: float | None = None) -> float | None:
     return ((now or time.time()) - max(p.stat().st_mtime for p in files)) / 86400.0
 
 
-def _model_readable(store) -> bool:
-    import triage.survival as survival  # noqa: PLC0415
-
-    try:
-        survival.latest_model(store)
-        return True
-    except survival.ModelFormatError:
-        return False
-
-
-def refit_like_latest(store):
-    """Refit the survival model with the settings of the newest saved one (horizon, cohort keys,
-    proactive counting), so the nightly refit never silently replaces a model an operator fitted
-    with other settings; the defaults when there is none yet."""
+def refit_like_latest(store, previous=None):
+    """Refit the survival model with the settings of ``previous`` (default: the newest saved
+    model) -- horizon, cohort keys, proactive counting -- so the nightly refit never silently
+    replaces a model an operator fitted with other settings; the defaults when there is none
+    or it cannot be read (e.g. a newer format)."""
     import triage.survival as survival  # noqa: PLC0415  (survival layer, to our left)
 
-    try:
-        previous = survival.latest_model(store)
-    except survival.ModelFormatError:
-        previous = None  # unreadable (e.g. a newer format): a fresh fit with the defaults
+    if previous is None:
+        previous, _ = survival.readable_latest_model(store)
     settings = {} if previous is None else {
         "horizon_days": previous.horizon_days, "by": tuple(previous.by),
         "count_proactive": previous.count_proactive}
@@ -92,6 +81,8 @@ def run_nightly(
     log: Callable[[str], None] = lambda line: None,
 ) -> NightlyReport:
     """Hold NIGHTLY_LOCK (raises StoreLocked if held), then ingest, refit when due, rank, export."""
+    import triage.survival as survival  # noqa: PLC0415  (survival layer, to our left)
+
     if ingest is None:
         from triage.ingest import ingest_paths as ingest  # noqa: PLC0415
     rank = rank or rank_store
@@ -102,10 +93,10 @@ def run_nightly(
         report.files_read, report.new_rows, report.rejected = got.files_read, got.new_rows, len(got.rejected)
         log(f"ingest: {got.files_read} file(s), {got.new_rows} new row(s), {len(got.rejected)} rejected")
 
-        age = model_age_days(store)
-        if age is None or age >= refit_days or not _model_readable(store):
+        previous, _ = survival.readable_latest_model(store)  # None also when it cannot be read
+        if previous is None or model_age_days(store) >= refit_days:
             try:
-                (refit or refit_like_latest)(store)
+                refit(store) if refit else refit_like_latest(store, previous)
                 report.refitted = True
             except ValueError as exc:  # e.g. no failures yet: rank on rules alone, say so
                 report.notes.append(f"refit skipped: {exc}")

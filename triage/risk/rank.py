@@ -10,7 +10,6 @@ from __future__ import annotations
 import fnmatch
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
-from pathlib import Path
 from typing import Callable, Sequence
 
 import pandas as pd
@@ -237,8 +236,7 @@ def rank_store(
 def _latest_model(store, notes: list[str]):
     import triage.survival as survival  # noqa: PLC0415  (survival layer, to our left)
 
-    try:
-        return survival.latest_model(store)
-    except survival.ModelFormatError as exc:
-        notes.append(f"saved model unreadable ({exc}): ranking on rules alone until 'triage fit' runs")
-        return None
+    model, unreadable = survival.readable_latest_model(store)
+    if unreadable:
+        notes.append(f"saved model unreadable ({unreadable}): ranking on rules alone until 'triage fit' runs")
+    return model

@@ -202,9 +202,8 @@ class Store:
         if not files:
             return rows
         stored = ds.dataset(files, schema=_schema_of(table), format="parquet").to_table(columns=list(key))
-        seen = stored.group_by(list(key), use_threads=False).aggregate([])  # distinct stored keys
         marked = rows.append_column("_row", pa.array(np.arange(rows.num_rows)))
-        kept = marked.join(seen, keys=list(key), join_type="left anti")
+        kept = marked.join(stored, keys=list(key), join_type="left anti")  # repeats in stored: no matter
         index = np.sort(kept["_row"].to_numpy())
         return rows.take(pa.array(index))
 

@@ -81,12 +81,19 @@ def _widest_age_range(entry: np.ndarray, exit_: np.ndarray) -> tuple[float, floa
     return float(starts[label == best].min()), float(ends[label == best].max())
 
 
+def _at_risk(entry: np.ndarray, exit_: np.ndarray, ages, just_after: bool = False) -> np.ndarray:
+    """Drives at risk at each age, #{entry < t <= exit} -- the risk set Y(t) of the estimators --
+    or with ``just_after``, #{entry <= t < exit}: those watched on the ages right after t."""
+    side = "right" if just_after else "left"
+    return (np.searchsorted(np.sort(entry), ages, side=side)
+            - np.searchsorted(np.sort(exit_), ages, side=side))
+
+
 def _start_age(entry: np.ndarray, exit_: np.ndarray, min_at_risk: int) -> float:
     """The youngest entry age with at least ``min_at_risk`` drives at risk just after it
     (#{entry <= a < exit}), or the one with the largest risk set if none has that many."""
     candidates = np.unique(entry)
-    at_risk = (np.searchsorted(np.sort(entry), candidates, side="right")
-               - np.searchsorted(np.sort(exit_), candidates, side="right"))
+    at_risk = _at_risk(entry, exit_, candidates, just_after=True)
     enough = np.flatnonzero(at_risk >= min(min_at_risk, at_risk.max()))
     return float(candidates[enough[0]])
 
@@ -125,16 +132,15 @@ def survival_curves(entry_hours, exit_hours, event, alpha: float = 0.05,
     cumhaz_band = na.confidence_interval_.reindex(ages, method="ffill")
     # Y(t) = #{entry < t <= exit}, the risk set the estimates use. (lifelines' event table also
     # counts a drive entering exactly at t, which whole-hour entry ages make common.)
-    at_risk = pd.Series(np.searchsorted(np.sort(entry), ages, side="left")
-                        - np.searchsorted(np.sort(exit_), ages, side="left"), index=ages)
-    at_risk.iloc[0] = int(np.sum((entry <= start) & (exit_ > start)))  # at risk just after the start
+    at_risk = _at_risk(entry, exit_, ages)
+    at_risk[0] = _at_risk(entry, exit_, [start], just_after=True)[0]  # the drives the curve starts with
     failures = events["observed"].reindex(ages).fillna(0)
     table = pd.DataFrame({
         "age_hours": ages,
         "survival": survival.to_numpy(),
         "survival_low": band.iloc[:, 0].fillna(1.0).to_numpy(),
         "survival_high": band.iloc[:, 1].fillna(1.0).to_numpy(),
-        "at_risk": at_risk.to_numpy(dtype=np.int64),
+        "at_risk": at_risk.astype(np.int64),
         "failures": failures.to_numpy(dtype=np.int64),
         "cumulative_hazard": cumhaz.to_numpy(),
         "cumulative_hazard_low": cumhaz_band.iloc[:, 0].fillna(0.0).to_numpy(),

@@ -581,6 +581,15 @@ def latest_model(store) -> FleetRiskModel | None:
     return FleetRiskModel.load(max(found)[2])
 
 
+def readable_latest_model(store) -> tuple[FleetRiskModel | None, str | None]:
+    """``latest_model``, with an unreadable newest model given back as the reason instead of
+    raised: (model, None), (None, None) when none is saved, or (None, why it cannot be read)."""
+    try:
+        return latest_model(store), None
+    except ModelFormatError as exc:
+        return None, str(exc)
+
+
 def _iso(moment) -> str | None:
     if moment is None or pd.isna(moment):
         return None
