@@ -1,0 +1,167 @@
+"""``triage ingest``, ``triage capture`` and ``triage demo``: getting captures into the store."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from triage.cli.common import StoreOption, app, fail
+from triage.cli.risk import _print_cautions, _risk_inputs
+from triage.config import resolve_store
+from triage.exitcodes import Exit
+
+
+@app.command(
+    epilog="Example: triage ingest /srv/captures/2026-11-30 --store /srv/triage/store",
+)
+def ingest(
+    paths: list[Path] = typer.Argument(..., help="Capture files (.jsonl, .jsonl.gz), removal logs (.csv), or folders of them."),
+    store: Optional[Path] = StoreOption,
+) -> None:
+    """Store capture files and removal logs; bad lines go to quarantine with a reason."""
+    from triage.ingest import ingest_paths
+    from triage.report.console import progress_bar
+    from triage.store.dataset import Store, StoreLocked
+
+    target = Store(resolve_store(store))
+    try:
+        with target.lock(), progress_bar("ingesting files") as progress:
+            report = ingest_paths(target, paths, progress=progress)
+    except (FileNotFoundError, ValueError) as exc:
+        fail(str(exc), Exit.USAGE)
+    except StoreLocked as exc:
+        fail(str(exc), Exit.LOCKED)
+    for rejected in report.rejected[:20]:
+        typer.echo(f"rejected: {rejected}", err=True)
+    if len(report.rejected) > 20:
+        typer.echo(f"rejected: ... {len(report.rejected) - 20} more in {target.quarantine_dir}", err=True)
+    stored = ", ".join(f"{n} {t}" for t, n in sorted(report.stored.items())) or "nothing new"
+    typer.echo(
+        f"ingest: {report.files_read} file(s) read, {report.files_skipped} already stored; "
+        f"stored {stored}; {len(report.rejected)} line(s) quarantined",
+        err=True,
+    )
+    if report.rejected:
+        raise typer.Exit(int(Exit.INPUT_REJECTED))
+
+
+
+# -- capture: read this host's drives into one capture file (triage/capture, docs/capture.md) ---
+@app.command(
+    epilog="Example: triage capture --out /var/lib/triage/captures --group-map /etc/triage/slots.csv",
+)
+def capture(
+    devices: Optional[list[str]] = typer.Argument(
+        None, help="Device nodes to read, e.g. /dev/sda /dev/nvme0 (default: every local SATA and NVMe drive in sysfs)."
+    ),
+    out: Path = typer.Option(Path("."), "--out", help="Existing folder for <host>-<YYYY-MM-DD>.jsonl.gz."),
+    group_map: Optional[Path] = typer.Option(
+        None, "--group-map", help="CSV key,slot,group: drive serial or wwn:<16 hex> -> slot and redundancy group."
+    ),
+) -> None:
+    """Read IDENTIFY and SMART / health data from this host's drives (read-only; needs root) into one
+    capture file. Exit: 0 all read, 6 some drives could not be read (the rest were written), 7 not root."""
+    from triage.capture import (
+        GroupMapError,
+        NeedsRoot,
+        OutputError,
+        capture_host,
+        enumerate_targets,
+        load_group_map,
+        require_root,
+        targets_for,
+    )
+
+    try:
+        require_root()
+    except NeedsRoot as exc:
+        fail(str(exc), Exit.NEEDS_ROOT)
+    if not out.is_dir():
+        fail(f"--out {out}: no such directory", Exit.USAGE)
+    placements = None
+    if group_map is not None:
+        try:
+            placements = load_group_map(group_map)
+        except GroupMapError as exc:
+            fail(str(exc), Exit.FAILURE)
+    if devices:
+        try:
+            targets = targets_for(devices)
+        except ValueError as exc:
+            fail(str(exc), Exit.USAGE)
+    else:
+        targets, skipped = enumerate_targets()
+        for item in skipped:
+            typer.echo(f"capture: left out {item.path}: {item.reason}", err=True)
+        if not targets:
+            fail("no local SATA or NVMe drive found under /sys/block and /sys/class/nvme; "
+                 "name the devices on the command line", Exit.FAILURE)
+    try:
+        result = capture_host(targets, out, placements)
+    except NeedsRoot as exc:
+        fail(str(exc), Exit.NEEDS_ROOT)
+    except (OutputError, FileNotFoundError, ValueError) as exc:
+        fail(str(exc), Exit.FAILURE)
+    for failure in result.failures:
+        typer.echo(f"triage: capture: {failure.describe()}", err=True)
+    for warning in result.warnings:
+        typer.echo(f"capture: warning: {warning}", err=True)
+    if result.path is None:
+        typer.echo(f"capture: none of {len(targets)} drive(s) could be read; no file written", err=True)
+    else:
+        typer.echo(str(result.path))
+        typer.echo(f"capture: {len(result.captured)} of {len(targets)} drive(s) written to {result.path}", err=True)
+    raise typer.Exit(int(result.exit_code))
+
+
+
+
+@app.command(
+    epilog="Example: triage demo --seed 7 --drives 1200 --days 120 --work demo-work --top 15",
+)
+def demo(
+    seed: int = typer.Option(7, help="Seed of the invented fleet; the same seed gives the same files."),
+    drives: int = typer.Option(1200, min=10, help="Drives in the fleet."),
+    days: int = typer.Option(120, min=2, help="Nightly captures per drive."),
+    work: Path = typer.Option(Path("demo-work"), help="Folder for the capture files, the store and the tickets."),
+    top: int = typer.Option(15, "--top", min=1, help="Drives shown in the closing ranked report."),
+    fmt: str = typer.Option("table", "--format", help="table | csv | json (the ranked report)."),
+) -> None:
+    """Run the whole pipeline on an invented fleet: generate its capture files, ingest them, fit the
+    model, rank the drives, write tickets; ends with the ranked report."""
+    from triage.demo import FleetSpec, NotADemoFolder, generate_fleet, prepare_demo_folder, write_captures
+    from triage.ingest import ingest_paths
+    from triage.report.console import progress_bar
+    from triage.report.rank import render_ranked
+    from triage.risk.nightly import run_nightly
+    from triage.risk.rank import filter_ranked
+    from triage.store.dataset import Store
+
+    if fmt not in ("table", "csv", "json"):
+        fail(f"--format must be table, csv or json, not {fmt!r}", Exit.USAGE)
+    spec = FleetSpec(seed=seed, n_drives=drives, days=days)
+    try:
+        folder, reused = prepare_demo_folder(work, spec)
+    except NotADemoFolder as exc:
+        fail(str(exc), Exit.USAGE)
+    typer.echo(f"demo: simulating {drives} drives x {days} nights (seed {seed}) into {work}"
+               + (" (same fleet as last time: the store is reused)" if reused else ""), err=True)
+    fleet = generate_fleet(spec)
+    with progress_bar("writing captures") as progress:
+        write_captures(fleet, folder.captures, progress=progress)
+    ruleset, config = _risk_inputs(None, False, None)
+    with progress_bar("ingesting") as progress:
+        report = run_nightly(
+            Store(folder.store), folder.captures, folder.tickets, ruleset, refit_days=0.0, config=config,
+            ingest=lambda store, paths: ingest_paths(store, paths, progress=progress),
+            log=lambda line: typer.echo(f"demo: {line}", err=True))
+    typer.echo(report.summary(), err=True)
+    result = report.result
+    _print_cautions(result)
+    render_ranked(filter_ranked(result.drives, flagged_only=True, top=top), fmt, result.horizon_days)
+    typer.echo(f"demo: tickets in {folder.tickets}; explore with: triage cohorts --store {folder.store}, "
+               f"triage survival <cohort> --store {folder.store}, triage rank --store {folder.store}", err=True)
+    if report.rejected:
+        raise typer.Exit(int(Exit.INPUT_REJECTED))

@@ -1,0 +1,123 @@
+"""``triage fit``, ``triage cohorts`` and ``triage survival``: failure rates and the risk model."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from triage.cli.common import StoreOption, app, fail
+from triage.config import resolve_store
+from triage.exitcodes import Exit
+
+
+# -- survival: fit, cohorts, survival (triage/survival, triage/report/survival.py, docs/survival.md) --
+ByOption = typer.Option("model", "--by", help="Cohort keys, comma-separated, among model, firmware, bus, capacity_bytes.")
+ProactiveOption = typer.Option(
+    True, "--count-proactive/--proactive-censored",
+    help="Count drives pulled on a warning ('proactive') as failures (default), or as censored.")
+MttfOption = typer.Option(None, "--mttf", min=1.0, help="Datasheet MTTF in hours: show the AFR it implies.")
+
+
+def _survival_call(function, *args, **kwargs):
+    """Run a survival-layer function; its known errors become one line and the right exit code."""
+    from triage.survival.cohorts import UnknownCohort
+    from triage.survival.cox import CoxFitError
+    from triage.survival.run import EmptyStore
+
+    try:
+        return function(*args, **kwargs)
+    except (EmptyStore, CoxFitError) as exc:
+        fail(str(exc), Exit.FAILURE)
+    except UnknownCohort as exc:
+        fail(str(exc), Exit.USAGE)
+    except ValueError as exc:  # bad --by and other option values
+        fail(str(exc), Exit.USAGE)
+    except OSError as exc:
+        fail(str(exc), Exit.FAILURE)
+
+
+def _survival_notes(exclusions) -> None:
+    from triage.report.survival import exclusion_lines
+
+    for line in exclusion_lines(exclusions):
+        typer.echo(line, err=True)
+
+
+@app.command(epilog="Example: triage fit --horizon-days 30 --by model --store /srv/triage/store")
+def fit(
+    horizon_days: float = typer.Option(30.0, "--horizon-days", min=1.0, help="Predict failure within this many days."),
+    by: str = ByOption,
+    count_proactive: bool = ProactiveOption,
+    fmt: str = typer.Option("table", "--format", help="table | json (summary of the fitted model)."),
+    store: Optional[Path] = StoreOption,
+) -> None:
+    """Fit the fleet risk model (AFR, Weibull, stratified Cox) and save it under <store>/models."""
+    from triage.report.console import progress_bar
+    from triage.report.survival import render_fit
+    from triage.store.dataset import Store
+    from triage.survival.run import fit_store
+
+    if fmt not in ("table", "json"):
+        fail(f"--format must be table or json, not {fmt!r}", Exit.USAGE)
+    target = Store(resolve_store(store))
+    with progress_bar("reading snapshots") as update:
+        model, path = _survival_call(fit_store, target, horizon_days=horizon_days, by=by,
+                                     count_proactive=count_proactive,
+                                     say=lambda message: typer.echo(f"fit: {message}", err=True), progress=update)
+    _survival_notes(model.exclusions_)
+    render_fit(model, path, fmt)
+
+
+@app.command(epilog="Example: triage cohorts --by model,firmware --format csv --mttf 2500000")
+def cohorts(
+    by: str = ByOption,
+    fmt: str = typer.Option("table", "--format", help="table | csv | json"),
+    mttf: Optional[float] = MttfOption,
+    count_proactive: bool = ProactiveOption,
+    store: Optional[Path] = StoreOption,
+) -> None:
+    """One row per cohort: drives, drive-days, failures, AFR with exact 95 % limits, Weibull shape and phase."""
+    from triage.report.console import progress_bar
+    from triage.report.survival import render_cohorts
+    from triage.store.dataset import Store
+    from triage.survival.run import cohorts_of_store
+
+    if fmt not in ("table", "csv", "json"):
+        fail(f"--format must be table, csv or json, not {fmt!r}", Exit.USAGE)
+    with progress_bar("reading snapshots") as update:
+        table, obs = _survival_call(cohorts_of_store, Store(resolve_store(store)), by=by,
+                                    count_proactive=count_proactive, mttf_hours=mttf, progress=update)
+    _survival_notes(obs.exclusions)
+    render_cohorts(table, fmt)
+
+
+@app.command(epilog="Example: triage survival 'QH-HD8T-A' --plot qh-hd8t-a.png --mttf 2500000")
+def survival(
+    cohort: str = typer.Argument(..., help="Cohort label as 'triage cohorts' prints it (same --by)."),
+    by: str = ByOption,
+    fmt: str = typer.Option("table", "--format", help="table | json"),
+    plot: Optional[Path] = typer.Option(None, "--plot", help="Also draw Kaplan-Meier with band and Weibull fit (.png or .svg)."),
+    mttf: Optional[float] = MttfOption,
+    count_proactive: bool = ProactiveOption,
+    store: Optional[Path] = StoreOption,
+) -> None:
+    """Survival and cumulative hazard by age (delayed entry), hazard by age band, Weibull fit of one cohort."""
+    from triage.report.console import progress_bar
+    from triage.report.survival import plot_survival, render_survival
+    from triage.store.dataset import Store
+    from triage.survival.run import survival_of_store
+
+    if fmt not in ("table", "json"):
+        fail(f"--format must be table or json, not {fmt!r}", Exit.USAGE)
+    if plot is not None and plot.suffix.lower() not in (".png", ".svg"):
+        fail(f"{plot}: --plot must name a .png or .svg file", Exit.USAGE)
+    with progress_bar("reading snapshots") as update:
+        report, obs = _survival_call(survival_of_store, Store(resolve_store(store)), cohort, by=by,
+                                     count_proactive=count_proactive, mttf_hours=mttf, progress=update)
+    _survival_notes(obs.exclusions)
+    render_survival(report, fmt)
+    if plot is not None:
+        _survival_call(plot_survival, report, plot)
+        typer.echo(f"survival: plot written to {plot}", err=True)
