@@ -215,16 +215,18 @@ def plot_survival(report, path: Path) -> Path:
 
 def fit_record(model, path: Path) -> dict:
     coefficients = model.coefficients().reset_index(names="covariate")
+    landmark = model.landmark_
     return {
         "path": str(path),
         "horizon_days": float(model.horizon_days),
         "by": list(model.by),
+        "events": "failed and proactive" if model.count_proactive else "failed",
         "data_window": model.data_window_,
-        "concordance": _plain(model.concordance_),
         "holdout": model.holdout_,
         "calibration": None if model.calibration_ is None else _records(model.calibration_),
         "coefficients": _records(coefficients),
-        "strata": model.strata_,
+        "cohorts": list(landmark.design_.cohorts),
+        "landmark_rows": int(landmark.n_rows_),
     }
 
 
@@ -238,18 +240,20 @@ def render_fit(model, path: Path, fmt: str, out: TextIO | None = None) -> None:
     console.print(f"saved {escape(str(path))}")
     console.print(f"data {window['first_taken_at']} to {window['last_taken_at']}: {window['snapshots']:,} "
                   f"snapshots, {window['drives']:,} drives, {window['failures']:,} failures, "
-                  f"{window['episodes']:,} covariate episodes, {window['excluded_drives']} drives excluded")
-    console.print(f"concordance (in-sample, time-dependent): {_num(model.concordance_, '.3f')}")
-    grid = Table(title="Covariate hazard ratios (stratified by cohort)", title_justify="left")
-    for head in ("covariate", "hazard ratio", "95 % range", "coef", "se"):
+                  f"{window['landmark_rows']:,} drive states at {window['landmarks']} weekly landmarks, "
+                  f"{window['excluded_drives']} drives excluded")
+    grid = Table(title=f"Failure rate ratio over the next {model.horizon_days:g} days, per covariate",
+                 title_justify="left")
+    for head in ("covariate", "rate ratio", "95 % range", "coef", "se"):
         grid.add_column(head, justify="left" if head == "covariate" else "right", overflow="fold")
     for row in _records(model.coefficients().reset_index(names="covariate")):
-        grid.add_row(row["covariate"], _num(row["hazard_ratio"], ".3g"),
-                     f"{_num(row['hazard_ratio_low'], '.3g')} - {_num(row['hazard_ratio_high'], '.3g')}",
+        grid.add_row(row["covariate"], _num(row["rate_ratio"], ".3g"),
+                     f"{_num(row['rate_ratio_low'], '.3g')} - {_num(row['rate_ratio_high'], '.3g')}",
                      _num(row["coef"], ".4f"), _num(row["se"], ".4f"))
     console.print(grid)
     if model.holdout_ is None:
-        console.print("held-out check: skipped (the data window is shorter than two horizons)")
+        console.print("held-out check: skipped (the data window is shorter than two horizons, "
+                      "or the training side holds no failure)")
         return
     h = model.holdout_
     console.print(f"held-out check: drives in service on {h['cut'][:10]}, next {h['horizon_days']:g} days: "

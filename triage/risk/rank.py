@@ -225,7 +225,7 @@ def rank_store(
     flags = evaluate(ruleset, history, now=as_of)
     p_fail, horizon = None, None
     if model is not None:
-        p_fail = model.predict_fail_probability(latest, horizon_days=None)
+        p_fail = model.predict_fail_probability(latest, horizon_days=None, history=history)
         horizon = float(model.horizon_days)
     else:
         notes.append("no saved survival model: ranking on rules alone (p_fail is empty)")

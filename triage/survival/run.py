@@ -8,6 +8,7 @@ from typing import Callable, Sequence
 import pandas as pd
 
 from triage.survival.cohorts import SurvivalReport, cohort_table, survival_report
+from triage.survival.landmark import store_reader
 from triage.survival.model import FleetRiskModel
 from triage.survival.observations import REMOVAL_COLUMNS, Observations, observations, scan_store
 
@@ -56,7 +57,7 @@ def survival_of_store(store, cohort: str, by: Sequence[str] = ("model",), count_
     return survival_report(obs, cohort, mttf_hours=mttf_hours), obs
 
 
-def fit_store(store, horizon_days: float = 30, by: Sequence[str] = ("model",), count_proactive: bool = True,
+def fit_store(store, horizon_days: float = 30, by: Sequence[str] = ("model",), count_proactive: bool = False,
               say: Callable[[str], None] | None = None,
               progress: Callable[[int, int], None] | None = None) -> tuple[FleetRiskModel, Path]:
     """Fit the fleet risk model on the whole store and save it under ``<store>/models``."""
@@ -64,11 +65,9 @@ def fit_store(store, horizon_days: float = 30, by: Sequence[str] = ("model",), c
     _check_not_empty(store)
     model = FleetRiskModel(horizon_days=horizon_days, by=by, count_proactive=count_proactive)
     model._validated()
-    days = store.days("snapshots")
-    cut = model.holdout_cut(pd.Timestamp(days[0], tz="UTC"), pd.Timestamp(days[-1], tz="UTC"))
     if say:
         say("reading snapshots")
-    scan = scan_store(store, cut=cut, progress=progress)
-    model.fit_scan(scan, read_removals(store), cut=cut, progress=say)
+    scan = scan_store(store, progress=progress)
+    model.fit_history(scan, store_reader(store), read_removals(store), progress=say)
     path = model.save(store.models_dir)
     return model, path
