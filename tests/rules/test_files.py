@@ -116,9 +116,9 @@ def test_a_broken_file_does_not_stop_the_other_files(tmp_path):
 
 
 def test_bad_explain_placeholder_is_reported(tmp_path):
-    write(tmp_path, "a.toml", GOOD.replace("{pending_sectors} pending", "{delta(pending_sectors)} pending"))
+    write(tmp_path, "a.toml", GOOD.replace("{pending_sectors} pending", "{growth(pending_sectors)} pending"))
     error = only_error(site_only(tmp_path))
-    assert error.line == 7 and "explain: delta() takes 2 argument(s)" in error.message
+    assert error.line == 7 and "explain: growth() takes 2 argument(s)" in error.message
 
 
 def test_bad_id_is_rejected(tmp_path):
@@ -176,11 +176,11 @@ def test_disabling_an_id_nobody_defined_is_an_error(tmp_path):
 
 
 def test_a_broken_override_leaves_the_default_in_effect(tmp_path):
-    write(tmp_path, "site.toml", '[[rule]]\nid = "media.pending-growth"\nwhen = "delta(pending_sectors) >= 8"\n')
+    write(tmp_path, "site.toml", '[[rule]]\nid = "media.pending-growth"\nwhen = "growth(pending_sectors) >= 8"\n')
     ruleset = load_rules([tmp_path])
     assert only_error(ruleset).line == 3
     rule = ruleset.get("media.pending-growth")
-    assert rule.status == "default" and rule.when.text == "delta(pending_sectors, 7) >= 8"
+    assert rule.status == "default" and rule.when.text == "growth(pending_sectors, 7) >= 8"
 
 
 def test_a_later_folder_overrides_an_earlier_one(tmp_path):
@@ -192,7 +192,7 @@ def test_a_later_folder_overrides_an_earlier_one(tmp_path):
 
 
 def test_window_days_covers_the_longest_window_plus_a_day(tmp_path):
-    write(tmp_path, "a.toml", GOOD.replace('"pending_sectors > 0"', '"max_over(temperature_c, 13.5) > 50"'))
+    write(tmp_path, "a.toml", GOOD.replace('"pending_sectors > 0"', '"highest(temperature_c, 13.5) > 50"'))
     assert site_only(tmp_path).window_days == 15
 
 
