@@ -44,7 +44,7 @@ def test_cohorts_json_is_a_list_of_objects_with_exactly_the_contract_keys(store_
 
 
 def test_cohorts_csv_parses_as_rfc4180_with_a_header(store_root):
-    result = run("cohorts", "--format", "csv", "--by", "model,capacity_bytes", "--store", str(store_root))
+    result = run("cohorts", "--format", "csv", "--by", "model,user_capacity_bytes", "--store", str(store_root))
     assert result.exit_code == Exit.OK, result.output
     text = result.stdout_bytes.decode()  # raw bytes: the runner's .stdout folds CRLF to LF
     assert text.endswith("\r\n") and text.count("\r\n") == 3  # RFC 4180 section 2: CRLF line breaks

@@ -334,7 +334,7 @@ def _decode_ata(batch: _Pending):
 
     snap = pd.DataFrame({
         "serial": identity["serial"], "model": identity["model"], "firmware": identity["firmware"],
-        "bus": "ata", "capacity_bytes": identity["capacity_bytes"],
+        "bus": "ata", "user_capacity_bytes": identity["user_capacity_bytes"],
         "rotation_rpm": identity["rotation_rpm"], "wwn": identity["wwn"],
     })
     for name in ("host", "device", "slot", "group", "taken_at", "source_file"):
@@ -360,12 +360,12 @@ def _decode_ata(batch: _Pending):
     attributes = pa.table({
         "serial": serial_of.take(take),
         "taken_at": taken_of.take(take).cast(pa.timestamp("us", tz="UTC")),
-        "id": pa.array(ids, pa.int32()),
-        "flags": pa.array(attrs["flags"].to_numpy(), pa.int32()),
-        "value": pa.array(attrs["value"].to_numpy(), pa.int32()),
-        "worst": pa.array(attrs["worst"].to_numpy(), pa.int32()),
+        "attribute_id": pa.array(ids, pa.int32()),
+        "status_flags": pa.array(attrs["flags"].to_numpy(), pa.int32()),
+        "normalized": pa.array(attrs["value"].to_numpy(), pa.int32()),
+        "worst_normalized": pa.array(attrs["worst"].to_numpy(), pa.int32()),
         "threshold": pa.array(threshold.to_numpy(dtype=np.int64, na_value=0), pa.int32(), mask=threshold.isna()),
-        "raw": pa.array(raw, pa.int64()),
+        "raw_value": pa.array(raw, pa.int64()),
     })
     return snapshots, attributes, rejected
 
@@ -420,7 +420,7 @@ def _decode_nvme(batch: _Pending):
                             written * NVME_DATA_UNIT_BYTES)
     snap = pd.DataFrame({
         "serial": identity["serial"], "model": identity["model"], "firmware": identity["firmware"],
-        "bus": "nvme", "capacity_bytes": identity["total_capacity_bytes"],
+        "bus": "nvme", "user_capacity_bytes": identity["total_capacity_bytes"],
         "rotation_rpm": 0,  # NVMe devices are solid state
     })
     for name in ("host", "device", "slot", "group", "taken_at", "source_file"):

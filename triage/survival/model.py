@@ -91,6 +91,7 @@ from triage.survival.observations import (
     COVARIATE_SOURCES,
     FEATURES,
     Observations,
+    RENAMED_COHORT_KEYS,
     Scan,
     check_by,
     cohort_labels,
@@ -428,7 +429,10 @@ class FleetRiskModel:
             raise ModelFormatError(f"{meta_path}: format_version {version} was written by an older triage "
                                    f"(other baseline or covariates; this one reads {FORMAT_VERSION}); "
                                    "refit with 'triage fit'")
-        model = cls(**meta["config"])
+        config = dict(meta["config"])
+        # a model fitted before the cohort key's rename groups by the same column
+        config["by"] = [RENAMED_COHORT_KEYS.get(key, key) for key in config["by"]]
+        model = cls(**config)
         model._validated()
         model.features_ = list(meta["features"])
         coefficients = meta["coefficients"]
