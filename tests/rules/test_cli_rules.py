@@ -81,3 +81,20 @@ def test_list_as_json_without_defaults_shows_only_site_rules(tmp_path):
 def test_list_rejects_an_unknown_format():
     result = runner.invoke(app, ["rules", "list", "--format", "yaml"])
     assert result.exit_code == Exit.USAGE
+
+
+def test_check_of_a_file_with_old_function_names_fails_with_one_line_per_use(tmp_path):
+    site = tmp_path / "site.toml"
+    site.write_text(textwrap.dedent("""\
+        [[rule]]
+        id = "site.cool"
+        title = "Never cools"
+        severity = "watch"
+        category = "thermal"
+        when = "min_over(temperature_c, 7) >= 50"
+        explain = "coolest {min_over(temperature_c, 7)} C"
+        """))
+    result = runner.invoke(app, ["rules", "check", str(tmp_path)])
+    assert result.exit_code == Exit.FAILURE
+    assert result.stdout.splitlines() == [f"{site}:6: 'min_over' is now 'lowest'",
+                                          f"{site}:7: 'min_over' is now 'lowest'"]

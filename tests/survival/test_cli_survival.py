@@ -66,6 +66,21 @@ def test_cohorts_table_names_every_cohort(store_root):
     assert "QH-HD8T-A" in result.stdout and "Tallow 14T" in result.stdout
 
 
+def test_cohorts_lead_with_the_interval_and_the_phase_then_exposure_and_counts(store_root):
+    result = run("cohorts", "--format", "csv", "--store", str(store_root))
+    header = result.stdout.splitlines()[0].split(",")
+    assert header[:5] == ["cohort", "afr", "afr_low", "afr_high", "phase"]
+    assert header.index("drives") > header.index("shape_high")
+    heads = next(line for line in run("cohorts", "--store", str(store_root)).stdout.splitlines() if "AFR %/yr" in line)
+    assert heads.index("AFR %/yr") < heads.index("phase") < heads.index("drives") < heads.index("failures")
+
+
+def test_the_old_capacity_cohort_key_names_the_new_one(store_root):
+    result = run("cohorts", "--by", "model,capacity_bytes", "--store", str(store_root))
+    assert result.exit_code == Exit.USAGE
+    assert result.output.strip() == "triage: cohort key 'capacity_bytes' is now 'user_capacity_bytes'"
+
+
 def test_unknown_cohort_key_is_a_usage_error(store_root):
     result = run("cohorts", "--by", "slot", "--store", str(store_root))
     assert result.exit_code == Exit.USAGE
