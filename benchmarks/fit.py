@@ -143,7 +143,7 @@ def write_day(snap_dir, day, rows, serial, model_ix, bus, poh, temperature, real
         "model": pa.array(names[model_ix[rows]], type=pa.string()),
         "firmware": pa.array(np.where(nvme, "CN21", "QF12").astype(object), type=pa.string()),
         "bus": pa.array(bus[rows].astype(object), type=pa.string()),
-        "capacity_bytes": ints(np.array([m[2] for m in MODELS])[model_ix[rows]]),
+        "user_capacity_bytes": ints(np.array([m[2] for m in MODELS])[model_ix[rows]]),
         "rotation_rpm": ints(np.array([m[3] for m in MODELS])[model_ix[rows]], type_=pa.int32()),
         "wwn": pa.nulls(n, pa.string()),
         "host": pa.array([f"ash-stor{i % 400:03d}" for i in rows], type=pa.string()),

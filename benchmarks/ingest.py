@@ -112,13 +112,13 @@ def same_job_baseline(files, out: Path) -> int:
             continue
         row.update(serial=ident.serial, model=ident.model, firmware=ident.firmware)
         if obj["bus"] == "ata":
-            row.update(capacity_bytes=ident.capacity_bytes, rotation_rpm=ident.rotation_rpm, wwn=ident.wwn)
+            row.update(user_capacity_bytes=ident.user_capacity_bytes, rotation_rpm=ident.rotation_rpm, wwn=ident.wwn)
             tripped = prefail = None if thresholds is None else False
             for a in smart.attributes:
                 threshold = None if thresholds is None else thresholds.get(a.id)
-                attributes.append({"serial": ident.serial, "taken_at": obj["taken_at"], "id": a.id,
-                                   "flags": a.flags, "value": a.value, "worst": a.worst,
-                                   "threshold": threshold, "raw": a.raw})
+                attributes.append({"serial": ident.serial, "taken_at": obj["taken_at"],
+                                   "attribute_id": a.id, "status_flags": a.flags, "normalized": a.value,
+                                   "worst_normalized": a.worst, "threshold": threshold, "raw_value": a.raw})
                 if a.id == 9:
                     row["power_on_hours"] = a.raw & 0xFFFFFFFF
                 elif a.id == 194:
@@ -130,7 +130,7 @@ def same_job_baseline(files, out: Path) -> int:
                     prefail = prefail or bool(a.flags & 1)
             row.update(threshold_tripped=tripped, prefail_tripped=prefail)
         else:
-            row.update(capacity_bytes=ident.total_capacity_bytes, rotation_rpm=0,
+            row.update(user_capacity_bytes=ident.total_capacity_bytes, rotation_rpm=0,
                        power_on_hours=health.power_on_hours, temperature_c=health.composite_temperature_k - 273,
                        power_cycles=health.power_cycles, nvme_critical_warning=health.critical_warning,
                        nvme_spare_pct=health.available_spare_pct, nvme_used_pct=health.percentage_used,

@@ -66,7 +66,7 @@ class NvmeTruth:
     serial: str
     model: str
     firmware: str
-    capacity_bytes: int
+    user_capacity_bytes: int
     power_on_hours: int
     temperature_k: int
     percentage_used: int
@@ -86,7 +86,7 @@ class NvmeTruth:
             {
                 "identify": build_nvme_identify(
                     serial=self.serial, model=self.model, firmware=self.firmware,
-                    total_capacity_bytes=self.capacity_bytes,
+                    total_capacity_bytes=self.user_capacity_bytes,
                 ),
                 "health": build_nvme_health(health),
             },

@@ -32,7 +32,7 @@ def decode(obj: dict) -> dict:
         smart = parse_smart_data(bytes.fromhex(obj["smart"]))
         by_id = {a.id: a for a in smart.attributes}
         row.update(serial=ident.serial, model=ident.model, firmware=ident.firmware,
-                   capacity_bytes=ident.capacity_bytes, rotation_rpm=ident.rotation_rpm,
+                   user_capacity_bytes=ident.user_capacity_bytes, rotation_rpm=ident.rotation_rpm,
                    wwn=ident.wwn)
         # attribute 9: low 32 bits of the raw value; 194: low byte (common practice, no source)
         row["power_on_hours"] = by_id[9].raw & 0xFFFFFFFF
@@ -53,7 +53,7 @@ def decode(obj: dict) -> dict:
         ident = parse_nvme_identify(bytes.fromhex(obj["identify"]))
         health = parse_nvme_health(bytes.fromhex(obj["health"]))
         row.update(serial=ident.serial, model=ident.model, firmware=ident.firmware,
-                   capacity_bytes=ident.total_capacity_bytes, rotation_rpm=0, wwn=None,
+                   user_capacity_bytes=ident.total_capacity_bytes, rotation_rpm=0, wwn=None,
                    power_on_hours=health.power_on_hours,
                    temperature_c=health.composite_temperature_k - 273,
                    power_cycles=health.power_cycles,

@@ -74,13 +74,13 @@ def test_capacity_uses_the_48_bit_count_of_words_100_to_103_when_non_zero():
     sector = hand_built(w60=0xFFFF, w61=0x0FFF)  # 28-bit count capped at 0FFFFFFFh
     struct.pack_into("<Q", sector, 200, 15_628_053_168)  # words 100-103, word 100 least significant
     parsed = parse_ata_identify(bytes(sector))
-    assert parsed.capacity_bytes == 15_628_053_168 * 512
+    assert parsed.user_capacity_bytes == 15_628_053_168 * 512
     assert parsed.logical_sector_size == 512
 
 
 def test_capacity_falls_back_to_the_28_bit_count_of_words_60_61():
     sector = hand_built(w60=0x5678, w61=0x0123)  # word 60 is the low word
-    assert parse_ata_identify(bytes(sector)).capacity_bytes == 0x01235678 * 512
+    assert parse_ata_identify(bytes(sector)).user_capacity_bytes == 0x01235678 * 512
 
 
 def test_logical_sector_size_comes_from_words_117_118_in_words():
@@ -90,7 +90,7 @@ def test_logical_sector_size_comes_from_words_117_118_in_words():
     struct.pack_into("<Q", sector, 200, 1_953_506_646)
     parsed = parse_ata_identify(bytes(sector))
     assert parsed.logical_sector_size == 4096
-    assert parsed.capacity_bytes == 1_953_506_646 * 4096
+    assert parsed.user_capacity_bytes == 1_953_506_646 * 4096
 
 
 def test_word_106_is_ignored_when_its_validity_bits_are_wrong():
@@ -186,7 +186,7 @@ def test_builder_round_trips_through_the_parser(kwargs):
     parsed = parse_ata_identify(sector)
     size = kwargs.get("logical_sector_size", 512)
     assert (parsed.serial, parsed.firmware, parsed.model) == ("QHB77120", "QF02", "Tallow 14T")
-    assert parsed.capacity_bytes == kwargs["sectors"] * size
+    assert parsed.user_capacity_bytes == kwargs["sectors"] * size
     assert parsed.logical_sector_size == size
     assert parsed.wwn == kwargs.get("wwn")
     assert parsed.rotation_rpm == kwargs.get("rotation_rpm")
@@ -262,7 +262,7 @@ def test_batch_decoder_equals_the_scalar_parser_on_random_sectors():
         assert row["serial"] == expected.serial
         assert row["firmware"] == expected.firmware
         assert row["model"] == expected.model
-        assert row["capacity_bytes"] == min(expected.capacity_bytes, INT64_MAX)
+        assert row["user_capacity_bytes"] == min(expected.user_capacity_bytes, INT64_MAX)
         assert row["logical_sector_size"] == expected.logical_sector_size
         assert row["wwn"] == expected.wwn
         rpm = row["rotation_rpm"]
@@ -274,7 +274,7 @@ def test_batch_decoder_equals_the_scalar_parser_on_random_sectors():
 def test_batch_decoder_of_an_empty_array_has_the_columns_and_no_rows():
     frame = decode_identify_batch(np.zeros((0, 512), dtype=np.uint8))
     assert len(frame) == 0
-    assert {"serial", "firmware", "model", "capacity_bytes", "wwn", "rotation_rpm",
+    assert {"serial", "firmware", "model", "user_capacity_bytes", "wwn", "rotation_rpm",
             "integrity_ok"} <= set(frame.columns)
 
 

@@ -182,7 +182,7 @@ def test_batch_decoder_equals_the_scalar_parser_on_random_sectors():
             assert row[name] == getattr(expected, name), name
         mine = attributes[attributes["row"] == i]
         got = [SmartAttribute(*map(int, r)) for r in
-               mine[["id", "flags", "value", "worst", "raw"]].itertuples(index=False)]
+               mine[["attribute_id", "status_flags", "normalized", "worst_normalized", "raw_value"]].itertuples(index=False)]
         assert got == list(expected.attributes)
 
 
@@ -192,7 +192,7 @@ def test_batch_attribute_rows_are_sorted_by_input_row_then_slot():
         for ids in ([9, 5], [], [194, 1, 12])
     ])
     _, attributes = decode_smart_batch(sectors)
-    assert list(zip(attributes["row"], attributes["id"])) == [
+    assert list(zip(attributes["row"], attributes["attribute_id"])) == [
         (0, 9), (0, 5), (2, 194), (2, 1), (2, 12)
     ]
-    assert str(attributes["raw"].dtype) == "int64"
+    assert str(attributes["raw_value"].dtype) == "int64"

@@ -64,7 +64,7 @@ def test_batch_decoder_equals_the_scalar_parser_on_random_sectors():
                 parse_smart_thresholds(sectors[i].tobytes())
             continue
         mine = thresholds[thresholds["row"] == i]
-        assert dict(zip(mine["id"], mine["threshold"])) == parse_smart_thresholds(
+        assert dict(zip(mine["attribute_id"], mine["threshold"])) == parse_smart_thresholds(
             sectors[i].tobytes()
         )
         assert header["revision"][i] == parse_smart_thresholds_revision(sectors[i].tobytes())

@@ -18,7 +18,7 @@ def test_ata_capture_becomes_one_snapshot_with_decoded_counters(tmp_path, write_
     row = store.read("snapshots").iloc[0]
     assert row["serial"] == "QHA0000001" and row["model"] == "QH-HD8T-A" and row["firmware"] == "QF01"
     # 48-bit LBA count x 512-byte sectors (ACS-3 IDENTIFY words 100-103)
-    assert row["capacity_bytes"] == 15_628_053_168 * 512
+    assert row["user_capacity_bytes"] == 15_628_053_168 * 512
     assert row["rotation_rpm"] == 7200
     # attribute 9: low 32 bits of raw (common practice, no source); 194: low byte (common practice)
     assert row["power_on_hours"] == 20_000
@@ -32,10 +32,10 @@ def test_ata_capture_becomes_one_snapshot_with_decoded_counters(tmp_path, write_
 def test_attribute_table_keeps_every_attribute_with_its_threshold(tmp_path, write_capture):
     store = Store(tmp_path / "store")
     ingest_paths(store, [write_capture("a.jsonl.gz", [ata_line()])])
-    attrs = store.read("attributes").sort_values("id")
-    assert attrs["id"].tolist() == [5, 9, 194, 197, 199]
-    assert attrs.set_index("id").loc[5, "threshold"] == 10
-    assert attrs.set_index("id").loc[9, "raw"] == (7 << 32) | 20_000
+    attrs = store.read("attributes").sort_values("attribute_id")
+    assert attrs["attribute_id"].tolist() == [5, 9, 194, 197, 199]
+    assert attrs.set_index("attribute_id").loc[5, "threshold"] == 10
+    assert attrs.set_index("attribute_id").loc[9, "raw_value"] == (7 << 32) | 20_000
 
 
 def test_capture_without_thresholds_has_null_threshold_fields(tmp_path, write_capture):

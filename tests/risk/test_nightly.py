@@ -64,9 +64,9 @@ def test_nightly_refit_keeps_the_settings_of_the_model_the_operator_fitted(tmp_p
     store = Store(tmp_path / "store")
     store.append("snapshots", snapshots)
     store.append("removals", removals)
-    fit_and_save(store, horizon_days=14, by=("model", "capacity_bytes"), count_proactive=False)
+    fit_and_save(store, horizon_days=14, by=("model", "user_capacity_bytes"), count_proactive=False)
     refit_like_latest(store)
     refitted = latest_model(store)
     assert refitted.path_.name.startswith("fleet-risk-v2-")
     assert (refitted.horizon_days, tuple(refitted.by), refitted.count_proactive) == (
-        14, ("model", "capacity_bytes"), False)
+        14, ("model", "user_capacity_bytes"), False)

@@ -25,17 +25,22 @@ def test_check_of_a_clean_folder_says_how_many_rules_are_ok(tmp_path, monkeypatc
     assert result.stdout.strip() == f"{DEFAULT_COUNT - 1} rules OK, 1 disabled"
 
 
-def test_check_prints_each_error_as_file_line_message_and_fails(tmp_path):
-    bad = tmp_path / "bad.toml"
-    bad.write_text(textwrap.dedent("""\
+def thermal_rule(when: str, explain: str) -> str:
+    """A site rule whose `when` is on line 6 and `explain` on line 7."""
+    return textwrap.dedent(f"""\
         [[rule]]
         id = "site.hot"
         title = "Hot"
         severity = "watch"
         category = "thermal"
-        when = "temprature_c > 60"
-        explain = "{temperature_c} C"
-        """))
+        when = "{when}"
+        explain = "{explain}"
+        """)
+
+
+def test_check_prints_each_error_as_file_line_message_and_fails(tmp_path):
+    bad = tmp_path / "bad.toml"
+    bad.write_text(thermal_rule("temprature_c > 60", "{temperature_c} C"))
     result = runner.invoke(app, ["rules", "check", str(tmp_path)])
     assert result.exit_code == Exit.FAILURE
     assert result.stdout.splitlines() == [
@@ -81,3 +86,12 @@ def test_list_as_json_without_defaults_shows_only_site_rules(tmp_path):
 def test_list_rejects_an_unknown_format():
     result = runner.invoke(app, ["rules", "list", "--format", "yaml"])
     assert result.exit_code == Exit.USAGE
+
+
+def test_check_of_a_file_with_old_function_names_fails_with_one_line_per_use(tmp_path):
+    site = tmp_path / "site.toml"
+    site.write_text(thermal_rule("min_over(temperature_c, 7) >= 50", "coolest {min_over(temperature_c, 7)} C"))
+    result = runner.invoke(app, ["rules", "check", str(tmp_path)])
+    assert result.exit_code == Exit.FAILURE
+    assert result.stdout.splitlines() == [f"{site}:6: 'min_over' is now 'lowest'",
+                                          f"{site}:7: 'min_over' is now 'lowest'"]

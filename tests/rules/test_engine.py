@@ -110,7 +110,7 @@ def test_delta_uses_the_latest_capture_at_or_before_the_window_start():
     # captures on days 0, 2, 5, 9, 10; now = day 10; now - 7 = day 3 -> baseline is day 2
     history = frame(hdd("A", days=[0, 2, 5, 9, 10], pending_sectors=[1, 2, 5, 9, 30]))
     assert values("before(pending_sectors, 7)", history) == {"A": 2.0}
-    assert values("delta(pending_sectors, 7)", history) == {"A": 28.0}
+    assert values("growth(pending_sectors, 7)", history) == {"A": 28.0}
     assert values("span_days(pending_sectors, 7)", history) == {"A": 8.0}
 
 
@@ -121,42 +121,42 @@ def test_a_capture_exactly_at_the_window_start_is_the_baseline():
 
 def test_delta_falls_back_to_the_earliest_capture_of_a_young_history():
     history = frame(hdd("A", days=[5, 6, 7], pending_sectors=[3, 4, 11]))
-    assert values("delta(pending_sectors, 7)", history) == {"A": 8.0}
+    assert values("growth(pending_sectors, 7)", history) == {"A": 8.0}
     assert values("span_days(pending_sectors, 7)", history) == {"A": 2.0}
 
 
 def test_delta_of_a_single_capture_is_zero():
     history = frame(hdd("A", pending_sectors=[12]))
-    assert values("delta(pending_sectors, 7)", history) == {"A": 0.0}
+    assert values("growth(pending_sectors, 7)", history) == {"A": 0.0}
 
 
 def test_rate_is_delta_per_day_between_baseline_and_latest():
     history = frame(hdd("A", days=[0, 4], crc_errors=[0, 10]))
-    assert values("rate(crc_errors, 7)", history) == {"A": 2.5}
+    assert values("growth_per_day(crc_errors, 7)", history) == {"A": 2.5}
 
 
 def test_rate_of_a_single_capture_is_unknown():
     history = frame(hdd("A", crc_errors=[4]))
-    assert values("rate(crc_errors, 7)", history) == {"A": None}
+    assert values("growth_per_day(crc_errors, 7)", history) == {"A": None}
 
 
 def test_windows_are_measured_from_now_and_later_captures_are_ignored():
     history = frame(hdd("A", days=[0, 1, 2, 3, 4], pending_sectors=[0, 0, 5, 9, 50]))
     # as of day 3, the day-4 capture does not exist yet
     assert values("pending_sectors", history, now=at(3)) == {"A": 9.0}
-    assert values("delta(pending_sectors, 2)", history, now=at(3)) == {"A": 9.0}
+    assert values("growth(pending_sectors, 2)", history, now=at(3)) == {"A": 9.0}
 
 
 def test_window_functions_skip_captures_missing_the_field():
     history = frame(hdd("A", days=[0, 1, 2, 3], pending_sectors=[2, None, None, 10]))
-    assert values("delta(pending_sectors, 2)", history) == {"A": 8.0}
+    assert values("growth(pending_sectors, 2)", history) == {"A": 8.0}
     assert values("before(pending_sectors, 2)", history) == {"A": 2.0}
 
 
 def test_window_functions_are_unknown_when_the_latest_capture_lacks_the_field():
     history = frame(hdd("A", days=[0, 1, 2], pending_sectors=[2, 9, None]))
-    assert values("delta(pending_sectors, 7)", history) == {"A": None}
-    assert values("max_over(pending_sectors, 7)", history) == {"A": None}
+    assert values("growth(pending_sectors, 7)", history) == {"A": None}
+    assert values("highest(pending_sectors, 7)", history) == {"A": None}
     assert values("consecutive_increases(pending_sectors, 1)", history) == {"A": None}
 
 
@@ -166,14 +166,14 @@ def test_max_and_min_over_use_captures_at_or_after_the_window_start():
     # now = day 10, window of 3 days: days 7..10; the spike on day 6 is outside, day 7 inside
     temps = [40, 41, 42, 43, 44, 45, 70, 65, 30, 50, 52]
     history = frame(hdd("A", temperature_c=temps))
-    assert values("max_over(temperature_c, 3)", history) == {"A": 65.0}
-    assert values("min_over(temperature_c, 3)", history) == {"A": 30.0}
-    assert values("max_over(temperature_c, 4)", history) == {"A": 70.0}
+    assert values("highest(temperature_c, 3)", history) == {"A": 65.0}
+    assert values("lowest(temperature_c, 3)", history) == {"A": 30.0}
+    assert values("highest(temperature_c, 4)", history) == {"A": 70.0}
 
 
 def test_max_over_of_a_drive_with_no_capture_in_the_window_is_unknown():
     history = frame(hdd("A", days=[0], temperature_c=[50]), hdd("B", days=[10], temperature_c=[40]))
-    assert values("max_over(temperature_c, 3)", history) == {"A": None, "B": 40.0}
+    assert values("highest(temperature_c, 3)", history) == {"A": None, "B": 40.0}
 
 
 # -- consecutive_increases and previous ---------------------------------------------------------
@@ -200,14 +200,14 @@ def test_consecutive_increases_is_unknown_with_too_few_captures():
 def test_a_single_capture_drive_beside_others_is_unknown_not_an_error():
     history = frame(hdd("ONE", crc_errors=[7]), hdd("FOUR", crc_errors=[1, 2, 3, 4]))
     assert values("consecutive_increases(crc_errors, 3)", history) == {"ONE": None, "FOUR": True}
-    assert values("previous(crc_errors, 1)", history) == {"ONE": None, "FOUR": 3.0}
+    assert values("captures_ago(crc_errors, 1)", history) == {"ONE": None, "FOUR": 3.0}
 
 
 def test_previous_counts_captures_back_from_the_latest():
     history = frame(hdd("A", crc_errors=[112, 120, 131, 140]))
-    assert values("previous(crc_errors, 1)", history) == {"A": 131.0}
-    assert values("previous(crc_errors, 3)", history) == {"A": 112.0}
-    assert values("previous(crc_errors, 4)", history) == {"A": None}
+    assert values("captures_ago(crc_errors, 1)", history) == {"A": 131.0}
+    assert values("captures_ago(crc_errors, 3)", history) == {"A": 112.0}
+    assert values("captures_ago(crc_errors, 4)", history) == {"A": None}
 
 
 # -- cross-checks against independent computations ----------------------------------------------
@@ -228,7 +228,7 @@ def _random_history(seed: int) -> pd.DataFrame:
 def test_delta_matches_pandas_merge_asof(seed):
     history = _random_history(seed)
     now, days = at(19.5), 7
-    got = values(f"delta(crc_errors, {days})", history, now=now)
+    got = values(f"growth(crc_errors, {days})", history, now=now)
     valued = history.dropna(subset=["crc_errors"]).sort_values("taken_at")
     latest_rows = history.sort_values("taken_at").groupby("serial").tail(1).set_index("serial")
     probe = pd.DataFrame({"serial": latest_rows.index, "t": now - pd.Timedelta(days=days)})
@@ -251,7 +251,7 @@ def test_delta_matches_pandas_merge_asof(seed):
 def test_max_over_matches_pandas_groupby(seed):
     history = _random_history(seed)
     now = at(19.5)
-    got = values("max_over(crc_errors, 5)", history, now=now)
+    got = values("highest(crc_errors, 5)", history, now=now)
     inside = history[history["taken_at"] >= now - pd.Timedelta(days=5)].dropna(subset=["crc_errors"])
     expected = inside.groupby("serial")["crc_errors"].max()
     last_known = history.sort_values("taken_at").groupby("serial").tail(1).set_index("serial")["crc_errors"].notna()
@@ -283,7 +283,7 @@ def test_consecutive_increases_matches_a_plain_loop(seed):
 
 def test_evaluate_returns_one_row_per_drive_and_firing_rule_with_evidence():
     history = frame(hdd("QHA002", pending_sectors=[0, 0, 0, 24]), hdd("QHA001", pending_sectors=[0, 0, 0, 0]))
-    rule = make_rule("delta(pending_sectors, 7) >= 8", severity="replace-soon",
+    rule = make_rule("growth(pending_sectors, 7) >= 8", severity="replace-soon",
                      explain="pending sectors {before(pending_sectors, 7)} -> {pending_sectors} in {span_days(pending_sectors, 7)} days",
                      rule_id="media.pending-growth")
     flags = evaluate([rule], history)
@@ -340,7 +340,7 @@ def test_per_drive_marks_a_path_only_drive_as_not_for_replacement():
 def test_template_formats_numbers_flags_and_missing_values():
     history = frame(hdd("A", days=[0, 3], crc_errors=[0, 10], prefail_tripped=True))
     drives = DriveHistory(history)
-    template = compile_template("{rate(crc_errors, 7):.2f}/day {rate(crc_errors, 7)} {prefail_tripped} "
+    template = compile_template("{growth_per_day(crc_errors, 7):.2f}/day {growth_per_day(crc_errors, 7)} {prefail_tripped} "
                                 "{nvme_used_pct} {crc_errors:d} {{literal}}")
     assert drives.render(template, np.array([0])) == ["3.33/day 3.33 yes unknown 10 {literal}"]
 

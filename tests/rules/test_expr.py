@@ -18,10 +18,10 @@ def error_of(text: str) -> ExprError:
 
 
 def test_tokens_carry_their_offsets():
-    tokens = tokenize("delta(crc_errors, 7) >= 10")
+    tokens = tokenize("growth(crc_errors, 7) >= 10")
     assert [(t.kind, t.text, t.offset) for t in tokens] == [
-        ("name", "delta", 0), ("op", "(", 5), ("name", "crc_errors", 6), ("op", ",", 16),
-        ("number", "7", 18), ("op", ")", 19), ("op", ">=", 21), ("number", "10", 24), ("end", "", 26),
+        ("name", "growth", 0), ("op", "(", 6), ("name", "crc_errors", 7), ("op", ",", 17),
+        ("number", "7", 19), ("op", ")", 20), ("op", ">=", 22), ("number", "10", 25), ("end", "", 27),
     ]
 
 
@@ -55,8 +55,8 @@ def test_parentheses_override_precedence():
 
 
 def test_calls_keep_field_and_number_arguments():
-    tree = parse("delta(pending_sectors, 7)")
-    assert tree == Call("delta", (Field("pending_sectors", 6), Literal(7.0, Kind.NUMBER, 23)), 0)
+    tree = parse("growth(pending_sectors, 7)")
+    assert tree == Call("growth", (Field("pending_sectors", 7), Literal(7.0, Kind.NUMBER, 24)), 0)
 
 
 def test_strings_take_either_quote():
@@ -65,7 +65,7 @@ def test_strings_take_either_quote():
 
 
 def test_compiled_expression_lists_fields_and_longest_window():
-    expression = compile_expression("delta(pending_sectors, 7) >= 8 or max_over(temperature_c, 14) > 60")
+    expression = compile_expression("growth(pending_sectors, 7) >= 8 or highest(temperature_c, 14) > 60")
     assert expression.fields == {"pending_sectors", "temperature_c"}
     assert expression.max_days == 14
     assert expression.kind == Kind.BOOL
@@ -84,7 +84,7 @@ def test_numeric_and_flag_snapshot_columns_are_fields_but_timestamps_are_not():
         ("pending_sector > 0", 1, "unknown field 'pending_sector' (did you mean 'pending_sectors'?)"),
         ("pending_sectors = 0", 17, "write '=='"),
         ("pending_sectors > 0 && prefail_tripped", 21, "write 'and', 'or', 'not'"),
-        ("delta(pending_sectors, 7d) > 0", 25, "a number takes no unit"),
+        ("growth(pending_sectors, 7d) > 0", 26, "a number takes no unit"),
         ("(pending_sectors > 0", 21, "expected ')'"),
         ("pending_sectors >", 18, "expression ends too early"),
         ("pending_sectors > 0 0", 21, "after a complete expression"),
@@ -108,14 +108,14 @@ def test_syntax_errors_point_at_the_column(text, column, words):
         ("bus > 3", 1, "'>' needs numbers"),
         ("bus == 3", 5, "cannot compare a text with a number"),
         ("average(pending_sectors, 7) > 1", 1, "unknown function 'average'"),
-        ("delta(pending_sectors) > 1", 1, "delta() takes 2 argument(s): delta(field, days)"),
-        ("delta(7, pending_sectors) > 1", 7, "takes a field name first"),
-        ("delta(bus, 7) > 1", 7, "needs a numeric field; 'bus' is a text"),
-        ("delta(pending_sectors, 0) > 1", 24, "days must be more than 0"),
-        ("delta(pending_sectors, 400) > 1", 24, "at most 366"),
+        ("growth(pending_sectors) > 1", 1, "growth() takes 2 argument(s): growth(field, days)"),
+        ("growth(7, pending_sectors) > 1", 8, "takes a field name first"),
+        ("growth(bus, 7) > 1", 8, "needs a numeric field; 'bus' is a text"),
+        ("growth(pending_sectors, 0) > 1", 25, "days must be more than 0"),
+        ("growth(pending_sectors, 400) > 1", 25, "at most 366"),
         ("consecutive_increases(crc_errors, 2.5)", 35, "count must be a whole number"),
         ("bit(nvme_critical_warning, 63)", 28, "bit position"),
-        ("delta > 1", 1, "'delta' is a function"),
+        ("growth > 1", 1, "'growth' is a function"),
         ("pending_sectors(7) > 1", 1, "'pending_sectors' is a field, not a function"),
     ],
 )

@@ -116,9 +116,9 @@ def test_a_broken_file_does_not_stop_the_other_files(tmp_path):
 
 
 def test_bad_explain_placeholder_is_reported(tmp_path):
-    write(tmp_path, "a.toml", GOOD.replace("{pending_sectors} pending", "{delta(pending_sectors)} pending"))
+    write(tmp_path, "a.toml", GOOD.replace("{pending_sectors} pending", "{growth(pending_sectors)} pending"))
     error = only_error(site_only(tmp_path))
-    assert error.line == 7 and "explain: delta() takes 2 argument(s)" in error.message
+    assert error.line == 7 and "explain: growth() takes 2 argument(s)" in error.message
 
 
 def test_bad_id_is_rejected(tmp_path):
@@ -176,11 +176,11 @@ def test_disabling_an_id_nobody_defined_is_an_error(tmp_path):
 
 
 def test_a_broken_override_leaves_the_default_in_effect(tmp_path):
-    write(tmp_path, "site.toml", '[[rule]]\nid = "media.pending-growth"\nwhen = "delta(pending_sectors) >= 8"\n')
+    write(tmp_path, "site.toml", '[[rule]]\nid = "media.pending-growth"\nwhen = "growth(pending_sectors) >= 8"\n')
     ruleset = load_rules([tmp_path])
     assert only_error(ruleset).line == 3
     rule = ruleset.get("media.pending-growth")
-    assert rule.status == "default" and rule.when.text == "delta(pending_sectors, 7) >= 8"
+    assert rule.status == "default" and rule.when.text == "growth(pending_sectors, 7) >= 8"
 
 
 def test_a_later_folder_overrides_an_earlier_one(tmp_path):
@@ -192,7 +192,7 @@ def test_a_later_folder_overrides_an_earlier_one(tmp_path):
 
 
 def test_window_days_covers_the_longest_window_plus_a_day(tmp_path):
-    write(tmp_path, "a.toml", GOOD.replace('"pending_sectors > 0"', '"max_over(temperature_c, 13.5) > 50"'))
+    write(tmp_path, "a.toml", GOOD.replace('"pending_sectors > 0"', '"highest(temperature_c, 13.5) > 50"'))
     assert site_only(tmp_path).window_days == 15
 
 
@@ -217,3 +217,67 @@ def test_site_folders_come_from_the_environment_when_no_option_is_given(monkeypa
     monkeypatch.setenv("TRIAGE_RULES", f"{tmp_path / 'a'}:{tmp_path / 'b'}")
     assert resolve_rules_dirs(None) == [tmp_path / "a", tmp_path / "b"]
     assert resolve_rules_dirs([tmp_path / "c"]) == [tmp_path / "c"]
+
+
+# -- functions renamed in the language: refused with the new name, one line per use ---------------
+
+OLD_NAMES = """\
+[[rule]]
+id = "site.cool"
+title = "Never cools"
+severity = "watch"
+category = "thermal"
+when = "min_over(temperature_c, 7) >= 50 and delta(crc_errors, 7) >= 0"
+explain = "coolest {min_over(temperature_c, 7)} C, {rate(crc_errors, 7)} CRC/day, was {previous(crc_errors, 1)}"
+source = "test"
+"""
+
+
+def test_each_use_of_an_old_function_name_is_one_line_naming_the_new_one(tmp_path):
+    path = write(tmp_path, "site.toml", GOOD + OLD_NAMES)
+    ruleset = site_only(tmp_path)
+    assert [str(e) for e in ruleset.errors] == [
+        f"{path}:14: 'min_over' is now 'lowest'",
+        f"{path}:14: 'delta' is now 'growth'",
+        f"{path}:15: 'min_over' is now 'lowest'",
+        f"{path}:15: 'rate' is now 'growth_per_day'",
+        f"{path}:15: 'previous' is now 'captures_ago'",
+    ]
+    # the other rule of the file loads unchanged; the one with old names does not load at all
+    assert [r.id for r in ruleset.rules] == ["site.pending-any"]
+
+
+def test_old_names_in_a_multi_line_condition_point_at_their_own_line(tmp_path):
+    text = OLD_NAMES.replace(
+        'when = "min_over(temperature_c, 7) >= 50 and delta(crc_errors, 7) >= 0"',
+        'when = """\nhighest(temperature_c, 7) >= 50\nand max_over(temperature_c, 7) >= 50"""',
+    ).replace('explain = "coolest {min_over(temperature_c, 7)} C, {rate(crc_errors, 7)} CRC/day, was {previous(crc_errors, 1)}"',
+              'explain = "{temperature_c} C"')
+    path = write(tmp_path, "site.toml", text)
+    assert [str(e) for e in site_only(tmp_path).errors] == [f"{path}:8: 'max_over' is now 'highest'"]
+
+
+def test_an_old_name_as_text_or_a_field_like_word_is_not_a_call(tmp_path):
+    # 'rate' in the evidence prose and in a quoted string is only words, not a call
+    text = GOOD.replace('explain = "{pending_sectors} pending"', 'explain = "rate (per day) {pending_sectors}"')
+    text = text.replace('when = "pending_sectors > 0"', "when = \"pending_sectors > 0 and model != 'delta(x)'\"")
+    write(tmp_path, "a.toml", text)
+    assert site_only(tmp_path).errors == []
+
+
+def test_an_override_with_an_old_name_leaves_the_default_in_effect(tmp_path):
+    write(tmp_path, "site.toml", '[[rule]]\nid = "media.pending-growth"\nwhen = "delta(pending_sectors, 7) >= 4"\n')
+    ruleset = load_rules([tmp_path])
+    assert [str(e) for e in ruleset.errors] == [f"{tmp_path / 'site.toml'}:3: 'delta' is now 'growth'"]
+    assert ruleset.get("media.pending-growth").when.text == "growth(pending_sectors, 7) >= 8"
+
+
+def test_an_old_name_in_a_library_expression_names_the_new_one():
+    from triage.rules.expr import ExprError, compile_expression
+
+    try:
+        compile_expression("max_over(temperature_c, 7) > 60")
+    except ExprError as exc:
+        assert (exc.message, exc.column) == ("'max_over' is now 'highest'", 1)
+    else:
+        raise AssertionError("an old function name compiled")

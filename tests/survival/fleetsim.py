@@ -56,7 +56,7 @@ def simulate_fleet(n_drives=600, days=120, seed=7, shape=1.5, scale_hours=60_000
         "model": model[drive],
         "firmware": "QF12",
         "bus": "ata",
-        "capacity_bytes": np.array([CAPACITY[m] for m in model])[drive],
+        "user_capacity_bytes": np.array([CAPACITY[m] for m in model])[drive],
         "taken_at": taken_at,
         "power_on_hours": ages[drive, night].astype(np.int64),
         "temperature_c": (36 + rng.integers(-1, 2, size=n)).astype(float),

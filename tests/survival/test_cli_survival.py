@@ -44,7 +44,7 @@ def test_cohorts_json_is_a_list_of_objects_with_exactly_the_contract_keys(store_
 
 
 def test_cohorts_csv_parses_as_rfc4180_with_a_header(store_root):
-    result = run("cohorts", "--format", "csv", "--by", "model,capacity_bytes", "--store", str(store_root))
+    result = run("cohorts", "--format", "csv", "--by", "model,user_capacity_bytes", "--store", str(store_root))
     assert result.exit_code == Exit.OK, result.output
     text = result.stdout_bytes.decode()  # raw bytes: the runner's .stdout folds CRLF to LF
     assert text.endswith("\r\n") and text.count("\r\n") == 3  # RFC 4180 section 2: CRLF line breaks
@@ -64,6 +64,21 @@ def test_cohorts_table_names_every_cohort(store_root):
     result = run("cohorts", "--store", str(store_root))
     assert result.exit_code == Exit.OK
     assert "QH-HD8T-A" in result.stdout and "Tallow 14T" in result.stdout
+
+
+def test_cohorts_lead_with_the_interval_and_the_phase_then_exposure_and_counts(store_root):
+    result = run("cohorts", "--format", "csv", "--store", str(store_root))
+    header = result.stdout.splitlines()[0].split(",")
+    assert header[:5] == ["cohort", "afr", "afr_low", "afr_high", "phase"]
+    assert header.index("drives") > header.index("shape_high")
+    heads = next(line for line in run("cohorts", "--store", str(store_root)).stdout.splitlines() if "AFR %/yr" in line)
+    assert heads.index("AFR %/yr") < heads.index("phase") < heads.index("drives") < heads.index("failures")
+
+
+def test_the_old_capacity_cohort_key_names_the_new_one(store_root):
+    result = run("cohorts", "--by", "model,capacity_bytes", "--store", str(store_root))
+    assert result.exit_code == Exit.USAGE
+    assert result.output.strip() == "triage: cohort key 'capacity_bytes' is now 'user_capacity_bytes'"
 
 
 def test_unknown_cohort_key_is_a_usage_error(store_root):

@@ -15,7 +15,7 @@ T0 = pd.Timestamp("2026-03-01T00:00:00Z")
 
 def snapshot(serial, day, poh, **counters):
     row = {"serial": serial, "taken_at": T0 + pd.Timedelta(days=day, hours=2), "power_on_hours": poh,
-           "model": "QH-HD8T-A", "firmware": "QA02", "bus": "ata", "capacity_bytes": 8_000_000_000_000}
+           "model": "QH-HD8T-A", "firmware": "QA02", "bus": "ata", "user_capacity_bytes": 8_000_000_000_000}
     row.update(counters)
     return row
 
@@ -165,7 +165,7 @@ def landmark_rows(rng, n, band_ages, rate_per_day, window=30.0, shares=None):
     failed = time < window
     states = pd.DataFrame({"serial": [f"D{i}" for i in range(n)], "age_hours": age.astype(float),
                            "model": "QH-HD8T-A", "firmware": "QA02", "bus": "ata",
-                           "capacity_bytes": 8_000_000_000_000})
+                           "user_capacity_bytes": 8_000_000_000_000})
     for name in lm.LANDMARK_FEATURES:
         states[name] = 0.0
     outcomes = pd.DataFrame({"failed": failed, "exposure_days": np.where(failed, time, window)})

@@ -18,7 +18,7 @@ def nightly(serial, first_hours, nights, model="QH-HD8T-A", step=24, **columns):
         "model": model,
         "firmware": "QF12",
         "bus": "ata",
-        "capacity_bytes": 8_000_000_000_000,
+        "user_capacity_bytes": 8_000_000_000_000,
         "taken_at": [T0 + pd.Timedelta(days=i) for i in range(nights)],
         "power_on_hours": [first_hours + step * i for i in range(nights)],
         "temperature_c": 38.0,
@@ -154,8 +154,8 @@ def test_store_scan_reads_the_same_drives_as_the_frame(tmp_path):
 
 def test_cohort_labels_join_the_chosen_keys():
     snaps = pd.concat([nightly("QHA1", 10, nights=2), nightly("QHT1", 10, nights=2, model="Tallow 14T")])
-    snaps.loc[snaps["serial"] == "QHT1", "capacity_bytes"] = 14_000_000_000_000
-    obs = build(snaps, by=("model", "capacity_bytes"))
+    snaps.loc[snaps["serial"] == "QHT1", "user_capacity_bytes"] = 14_000_000_000_000
+    obs = build(snaps, by=("model", "user_capacity_bytes"))
     assert sorted(obs.drives["cohort"]) == ["QH-HD8T-A / 8 TB", "Tallow 14T / 14 TB"]
 
 

@@ -2,10 +2,16 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+from typing import TYPE_CHECKING
+
 import typer
 
 from triage import __version__
 from triage.exitcodes import Exit
+
+if TYPE_CHECKING:
+    from triage.store.dataset import Store
 
 app = typer.Typer(
     name="triage",
@@ -35,6 +41,21 @@ def _root(
     ),
 ) -> None:
     """Fleet drive-health triage."""
+
+
+def open_store(option: Path | None) -> "Store":
+    """The store the --store option names, brought up to the current format (docs/store.md)."""
+    from triage.config import resolve_store
+    from triage.store.dataset import Store, StoreFormatError, StoreLocked
+
+    store = Store(resolve_store(option))
+    try:
+        store.upgrade()
+    except StoreLocked as exc:
+        fail(f"{exc}; an older store is converted only under the writer lock", Exit.LOCKED)
+    except (StoreFormatError, OSError) as exc:
+        fail(str(exc), Exit.FAILURE)
+    return store
 
 
 def fail(message: str, code: Exit = Exit.FAILURE) -> None:

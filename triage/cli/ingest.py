@@ -7,9 +7,8 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import StoreOption, app, fail
+from triage.cli.common import StoreOption, app, fail, open_store
 from triage.cli.risk import _print_cautions, _risk_inputs
-from triage.config import resolve_store
 from triage.exitcodes import Exit
 
 
@@ -23,9 +22,9 @@ def ingest(
     """Store capture files and removal logs; bad lines go to quarantine with a reason."""
     from triage.ingest import ingest_paths
     from triage.report.console import progress_bar
-    from triage.store.dataset import Store, StoreLocked
+    from triage.store.dataset import StoreLocked
 
-    target = Store(resolve_store(store))
+    target = open_store(store)
     try:
         with target.lock(), progress_bar("ingesting files") as progress:
             report = ingest_paths(target, paths, progress=progress)

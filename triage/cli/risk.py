@@ -7,8 +7,7 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import StoreOption, app, fail
-from triage.config import resolve_store
+from triage.cli.common import StoreOption, app, fail, open_store
 from triage.exitcodes import Exit
 
 
@@ -65,12 +64,11 @@ def rank(
     """Rank drives for proactive replacement: rule severity, P(fail) and redundancy groups."""
     from triage.report.rank import render_ranked
     from triage.risk.rank import filter_ranked, rank_store
-    from triage.store.dataset import Store
 
     if fmt not in ("table", "csv", "json"):
         fail(f"--format must be table, csv or json, not {fmt!r}", Exit.USAGE)
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
-    result = rank_store(Store(resolve_store(store)), ruleset, config=config)
+    result = rank_store(open_store(store), ruleset, config=config)
     for note in result.notes:
         typer.echo(f"note: {note}", err=True)
     try:
@@ -97,10 +95,9 @@ def tickets(
     from triage.report.tickets import summary_line
     from triage.risk.rank import rank_store
     from triage.risk.tickets import export_tickets
-    from triage.store.dataset import Store
 
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
-    result = rank_store(Store(resolve_store(store)), ruleset, config=config)
+    result = rank_store(open_store(store), ruleset, config=config)
     for note in result.notes:
         typer.echo(f"note: {note}", err=True)
     try:
@@ -127,10 +124,10 @@ def nightly(
     """Ingest new captures, refit when due, rank, write tickets. Exit: 0 nothing new, 4 new flags,
     3 some input rejected, 5 another run holds the lock, 1 failure."""
     from triage.risk.nightly import run_nightly
-    from triage.store.dataset import Store, StoreLocked
+    from triage.store.dataset import StoreLocked
 
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
-    target = Store(resolve_store(store))
+    target = open_store(store)
     try:
         report = run_nightly(target, dumps, out, ruleset, refit_days=refit_days, config=config,
                              log=lambda line: typer.echo(line, err=True))

@@ -7,13 +7,12 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import StoreOption, app, fail
-from triage.config import resolve_store
+from triage.cli.common import StoreOption, app, fail, open_store
 from triage.exitcodes import Exit
 
 
 # -- survival: fit, cohorts, survival (triage/survival, triage/report/survival.py, docs/survival.md) --
-ByOption = typer.Option("model", "--by", help="Cohort keys, comma-separated, among model, firmware, bus, capacity_bytes.")
+ByOption = typer.Option("model", "--by", help="Cohort keys, comma-separated, among model, firmware, bus, user_capacity_bytes.")
 ProactiveOption = typer.Option(
     True, "--count-proactive/--proactive-censored",
     help="Count drives pulled on a warning ('proactive') as failures (default), or as censored.")
@@ -56,12 +55,11 @@ def fit(
     """Fit the fleet risk model (AFR, Weibull, stratified Cox) and save it under <store>/models."""
     from triage.report.console import progress_bar
     from triage.report.survival import render_fit
-    from triage.store.dataset import Store
     from triage.survival.run import fit_store
 
     if fmt not in ("table", "json"):
         fail(f"--format must be table or json, not {fmt!r}", Exit.USAGE)
-    target = Store(resolve_store(store))
+    target = open_store(store)
     with progress_bar("reading snapshots") as update:
         model, path = _survival_call(fit_store, target, horizon_days=horizon_days, by=by,
                                      count_proactive=count_proactive,
@@ -78,16 +76,15 @@ def cohorts(
     count_proactive: bool = ProactiveOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
-    """One row per cohort: drives, drive-days, failures, AFR with exact 95 % limits, Weibull shape and phase."""
+    """One row per cohort: AFR with exact 95 % limits, life phase and Weibull shape, then drives, drive-days, failures."""
     from triage.report.console import progress_bar
     from triage.report.survival import render_cohorts
-    from triage.store.dataset import Store
     from triage.survival.run import cohorts_of_store
 
     if fmt not in ("table", "csv", "json"):
         fail(f"--format must be table, csv or json, not {fmt!r}", Exit.USAGE)
     with progress_bar("reading snapshots") as update:
-        table, obs = _survival_call(cohorts_of_store, Store(resolve_store(store)), by=by,
+        table, obs = _survival_call(cohorts_of_store, open_store(store), by=by,
                                     count_proactive=count_proactive, mttf_hours=mttf, progress=update)
     _survival_notes(obs.exclusions)
     render_cohorts(table, fmt)
@@ -106,7 +103,6 @@ def survival(
     """Survival and cumulative hazard by age (delayed entry), hazard by age band, Weibull fit of one cohort."""
     from triage.report.console import progress_bar
     from triage.report.survival import plot_survival, render_survival
-    from triage.store.dataset import Store
     from triage.survival.run import survival_of_store
 
     if fmt not in ("table", "json"):
@@ -114,7 +110,7 @@ def survival(
     if plot is not None and plot.suffix.lower() not in (".png", ".svg"):
         fail(f"{plot}: --plot must name a .png or .svg file", Exit.USAGE)
     with progress_bar("reading snapshots") as update:
-        report, obs = _survival_call(survival_of_store, Store(resolve_store(store)), cohort, by=by,
+        report, obs = _survival_call(survival_of_store, open_store(store), cohort, by=by,
                                      count_proactive=count_proactive, mttf_hours=mttf, progress=update)
     _survival_notes(obs.exclusions)
     render_survival(report, fmt)

@@ -81,12 +81,12 @@ class DriveModel:
         return idema_sectors(self.gigabytes, self.logical_sector_size)
 
     @property
-    def capacity_bytes(self) -> int:
+    def user_capacity_bytes(self) -> int:
         return self.sectors * self.logical_sector_size
 
     @property
     def endurance_bytes(self) -> float:
-        return self.capacity_bytes * self.rated_dwpd * 365.0 * 5.0
+        return self.user_capacity_bytes * self.rated_dwpd * 365.0 * 5.0
 
 
 def _scale_for_afr(afr: float) -> float:

@@ -447,7 +447,7 @@ def generate_fleet(spec: FleetSpec) -> Fleet:
         "model": [spec.models[m].name for m in d["model"]],
         "firmware": [spec.models[m].firmwares[f] for m, f in zip(d["model"], d["firmware"])],
         "bus": [spec.models[m].bus for m in d["model"]],
-        "capacity_bytes": np.array([spec.models[m].capacity_bytes for m in d["model"]], dtype=np.int64),
+        "user_capacity_bytes": np.array([spec.models[m].user_capacity_bytes for m in d["model"]], dtype=np.int64),
         "site": [spec.sites[s].name for s in site_idx],
         "host": hosts["host"].to_numpy()[d["host"]],
         "slot": slots["slot"].to_numpy()[d["slot"]],
@@ -547,7 +547,7 @@ def _static_arrays(spec, d, hosts, rng):
         + rng.normal(0.0, 1.5, n)  # airflow differs bay to bay
         + 3.0 * load
     )
-    capacity = np.array([models[m].capacity_bytes for m in d["model"]], float)
+    capacity = np.array([models[m].user_capacity_bytes for m in d["model"]], float)
     lo = np.array([models[m].write_dwpd[0] for m in d["model"]])
     hi = np.array([models[m].write_dwpd[1] for m in d["model"]])
     dwpd = np.exp(rng.uniform(np.log(np.maximum(lo, 1e-6)), np.log(np.maximum(hi, 1e-6))))

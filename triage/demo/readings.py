@@ -128,7 +128,7 @@ def ata_readings(fleet: Fleet, state: NightState, model_index: int) -> AtaReadin
             r = cnt[:, C["power_cycles"]]
             v = w = _clip(100 - r // 1000)
         elif attr == 177:
-            r = np.floor(written_bytes(fleet, state)[rows] / model.capacity_bytes).astype(np.int64)
+            r = np.floor(written_bytes(fleet, state)[rows] / model.user_capacity_bytes).astype(np.int64)
             v = w = _clip(100 - used)
         elif attr == 187:
             r = cnt[:, C["reported_uncorrectable"]]

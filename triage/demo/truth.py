@@ -21,7 +21,7 @@ from triage.store.schema import ATA_COUNTER_ATTRIBUTES, SNAPSHOTS
 SNAPSHOT_COLUMNS = [name for name in SNAPSHOTS.names if name != "source_file"]
 
 DRIVE_COLUMNS = [
-    "serial", "model", "firmware", "bus", "capacity_bytes", "site", "host", "slot", "group",
+    "serial", "model", "firmware", "bus", "user_capacity_bytes", "site", "host", "slot", "group",
     "entry_age_hours", "failed", "failure_time", "warned",
     # beyond the minimum: the rest of each drive's story
     "device", "wwn", "entry_time", "failure_age_hours", "warning_onset", "exit_time",
@@ -62,7 +62,7 @@ def _snapshot_columns(fleet: Fleet, state: NightState) -> dict[str, tuple[np.nda
     for name in ("serial", "model", "firmware", "bus", "wwn", "host", "device", "slot", "group"):
         values = drives[name].to_numpy()[drv]
         cols[name] = (values, pd.isna(values))
-    cols["capacity_bytes"] = (drives["capacity_bytes"].to_numpy()[drv], none)
+    cols["user_capacity_bytes"] = (drives["user_capacity_bytes"].to_numpy()[drv], none)
     cols["rotation_rpm"] = (np.array([m.rotation_rpm for m in spec.models])[model_of], none)
     cols["taken_at"] = (state.taken_at_us, none)
     cols["power_on_hours"] = (np.floor(state.power_on_hours).astype(np.int64), none)

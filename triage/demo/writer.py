@@ -206,7 +206,7 @@ class _Encoder:
                 else:
                     data = build_nvme_identify(serial=serials[i], model=m.name,
                                                firmware=firmwares[i],
-                                               total_capacity_bytes=m.capacity_bytes)
+                                               total_capacity_bytes=m.user_capacity_bytes)
                 blocks.append(np.frombuffer(data, dtype=np.uint8))
             size = 512 if m.bus == "ata" else 4096
             self.identify.append(np.stack(blocks) if blocks else np.zeros((0, size), np.uint8))

@@ -69,7 +69,7 @@ class AtaIdentify:
     serial: str
     firmware: str
     model: str
-    capacity_bytes: int
+    user_capacity_bytes: int
     logical_sector_size: int
     wwn: str | None  # 16 lowercase hex digits; None when words 108-111 are all zero
     rotation_rpm: int | None  # 0 = solid state, None = not reported / reserved value
@@ -130,7 +130,7 @@ def parse_ata_identify(data: bytes) -> AtaIdentify:
         serial=clean_ata_string(data[SERIAL]),
         firmware=clean_ata_string(data[FIRMWARE]),
         model=clean_ata_string(data[MODEL]),
-        capacity_bytes=sectors * logical_sector_size,
+        user_capacity_bytes=sectors * logical_sector_size,
         logical_sector_size=logical_sector_size,
         wwn=f"{wwn_value:016x}" if wwn_value else None,
         rotation_rpm=_rotation_rpm(_word(data, ROTATION_OFFSET)),
@@ -205,7 +205,7 @@ def decode_identify_batch(a: np.ndarray) -> pd.DataFrame:
     """Many IDENTIFY sectors at once: ``a`` is uint8 of shape (N, 512), one sector per row.
 
     Columns, one row per input row in order: ``serial``, ``firmware``, ``model`` (str, cleaned as
-    :func:`parse_ata_identify` does), ``capacity_bytes`` (int64, saturated at 2**63-1),
+    :func:`parse_ata_identify` does), ``user_capacity_bytes`` (int64, saturated at 2**63-1),
     ``logical_sector_size`` (int64), ``wwn`` (str or None), ``rotation_rpm`` (Int64),
     ``integrity_ok`` (bool: no A5h signature, or the sum is right) and ``problem`` (None, or the
     ``LayoutError.field`` the scalar parser would raise for that row).
@@ -257,7 +257,7 @@ def decode_identify_batch(a: np.ndarray) -> pd.DataFrame:
             "serial": text(SERIAL),
             "firmware": text(FIRMWARE),
             "model": text(MODEL),
-            "capacity_bytes": capacity.astype(np.int64),
+            "user_capacity_bytes": capacity.astype(np.int64),
             "logical_sector_size": _batch.saturate_int64(sector_size),
             "wwn": wwn,
             "rotation_rpm": rotation,

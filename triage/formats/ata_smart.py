@@ -228,7 +228,7 @@ def attribute_table_batch(a: np.ndarray, value_fields: dict[str, tuple[int, int]
     """Long table of the non-empty 12-byte slots of every row (shared with the thresholds page).
 
     ``value_fields`` maps column name -> (offset within the entry, size in bytes); the result has
-    ``row`` (input row index) and ``id`` first, rows sorted by input row then slot.
+    ``row`` (input row index) and ``attribute_id`` first, rows sorted by input row then slot.
     """
     n = a.shape[0]
     entries = a[:, TABLE_OFFSET:TABLE_END].reshape(n, ENTRY_COUNT, ENTRY_SIZE)
@@ -237,7 +237,7 @@ def attribute_table_batch(a: np.ndarray, value_fields: dict[str, tuple[int, int]
     used = entries[occupied]  # (M, 12), same order as rows
     columns = {
         "row": rows.astype(np.int64),
-        "id": used[:, ENTRY_ID].astype(np.int64),
+        "attribute_id": used[:, ENTRY_ID].astype(np.int64),
     }
     for name, (offset, size) in value_fields.items():
         columns[name] = _batch.le_uint(used, offset, size).astype(np.int64)
@@ -249,8 +249,9 @@ def decode_smart_batch(a: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame]:
 
     Returns ``(sectors, attributes)``: ``sectors`` has one row per input row with ``revision``,
     ``checksum_ok`` and the other :class:`SmartData` header fields; ``attributes`` is long format,
-    one row per non-empty slot: ``row`` (input row index), ``id``, ``flags``, ``value``, ``worst``,
-    ``raw`` (all int64), sorted by row then slot. Rows with a bad checksum are decoded anyway;
+    one row per non-empty slot: ``row`` (input row index), ``attribute_id``, ``status_flags``,
+    ``normalized``, ``worst_normalized``, ``raw_value`` (all int64; the store's names for the
+    SFF-8035i entry fields), sorted by row then slot. Rows with a bad checksum are decoded anyway;
     the caller decides (``checksum_ok``) whether to keep them.
     """
     a = _batch.check_batch(a, SMART_LENGTH, "smart.length")
@@ -266,10 +267,10 @@ def decode_smart_batch(a: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame]:
     attributes = attribute_table_batch(
         a,
         {
-            "flags": (ENTRY_FLAGS, 2),
-            "value": (ENTRY_VALUE, 1),
-            "worst": (ENTRY_WORST, 1),
-            "raw": (ENTRY_RAW, ENTRY_RAW_SIZE),
+            "status_flags": (ENTRY_FLAGS, 2),
+            "normalized": (ENTRY_VALUE, 1),
+            "worst_normalized": (ENTRY_WORST, 1),
+            "raw_value": (ENTRY_RAW, ENTRY_RAW_SIZE),
         },
     )
     return pd.DataFrame(columns), attributes

@@ -90,7 +90,7 @@ def decode_thresholds_batch(a: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame]:
 
     Returns ``(sectors, thresholds)``: ``sectors`` has one row per input row with ``checksum_ok``
     and ``revision``; ``thresholds`` is long format, one row per non-empty slot: ``row`` (input
-    row index), ``id``, ``threshold`` (int64), sorted by row then slot. When a sector repeats an
+    row index), ``attribute_id``, ``threshold`` (int64), sorted by row then slot. When a sector repeats an
     id, only its last slot is kept, as in :func:`parse_smart_thresholds`.
     """
     a = _batch.check_batch(a, THRESHOLDS_LENGTH, "thresholds.length")
@@ -101,5 +101,5 @@ def decode_thresholds_batch(a: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame]:
         }
     )
     thresholds = attribute_table_batch(a, {"threshold": (ENTRY_THRESHOLD, 1)})
-    thresholds = thresholds.drop_duplicates(["row", "id"], keep="last").reset_index(drop=True)
+    thresholds = thresholds.drop_duplicates(["row", "attribute_id"], keep="last").reset_index(drop=True)
     return sectors, thresholds

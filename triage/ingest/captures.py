@@ -328,13 +328,13 @@ def _decode_ata(batch: _Pending):
     # Attribute rows with their thresholds (threshold null when the capture had none).
     attrs = attrs[~bad[attrs["row"].to_numpy()]]
     row = attrs["row"].to_numpy()
-    raw = attrs["raw"].to_numpy(np.int64)
-    ids = attrs["id"].to_numpy()
+    raw = attrs["raw_value"].to_numpy(np.int64)
+    ids = attrs["attribute_id"].to_numpy()
     attrs = attrs.assign(threshold=_thresholds_of(n, thresholds, has_thresholds, row, ids))
 
     snap = pd.DataFrame({
         "serial": identity["serial"], "model": identity["model"], "firmware": identity["firmware"],
-        "bus": "ata", "capacity_bytes": identity["capacity_bytes"],
+        "bus": "ata", "user_capacity_bytes": identity["user_capacity_bytes"],
         "rotation_rpm": identity["rotation_rpm"], "wwn": identity["wwn"],
     })
     for name in ("host", "device", "slot", "group", "taken_at", "source_file"):
@@ -360,12 +360,12 @@ def _decode_ata(batch: _Pending):
     attributes = pa.table({
         "serial": serial_of.take(take),
         "taken_at": taken_of.take(take).cast(pa.timestamp("us", tz="UTC")),
-        "id": pa.array(ids, pa.int32()),
-        "flags": pa.array(attrs["flags"].to_numpy(), pa.int32()),
-        "value": pa.array(attrs["value"].to_numpy(), pa.int32()),
-        "worst": pa.array(attrs["worst"].to_numpy(), pa.int32()),
+        "attribute_id": pa.array(ids, pa.int32()),
+        "status_flags": pa.array(attrs["status_flags"].to_numpy(), pa.int32()),
+        "normalized": pa.array(attrs["normalized"].to_numpy(), pa.int32()),
+        "worst_normalized": pa.array(attrs["worst_normalized"].to_numpy(), pa.int32()),
         "threshold": pa.array(threshold.to_numpy(dtype=np.int64, na_value=0), pa.int32(), mask=threshold.isna()),
-        "raw": pa.array(raw, pa.int64()),
+        "raw_value": pa.array(raw, pa.int64()),
     })
     return snapshots, attributes, rejected
 
@@ -377,7 +377,7 @@ def _thresholds_of(n: int, thresholds: pd.DataFrame, has_thresholds: np.ndarray,
     table = np.full((n, 256), -1, dtype=np.int16)
     t_row = thresholds["row"].to_numpy()
     keep = has_thresholds[t_row]
-    table[t_row[keep], thresholds["id"].to_numpy()[keep]] = thresholds["threshold"].to_numpy()[keep]
+    table[t_row[keep], thresholds["attribute_id"].to_numpy()[keep]] = thresholds["threshold"].to_numpy()[keep]
     found = table[row, ids].astype(np.int64)
     return pd.arrays.IntegerArray(np.maximum(found, 0), found < 0)
 
@@ -397,8 +397,8 @@ def _tripped(n: int, attrs: pd.DataFrame, has_thresholds: np.ndarray):
     """SMART threshold semantics (SFF-8035i; ATA ACS-3 SMART RETURN STATUS): an attribute has
     crossed its threshold when its normalized value is at or below a non-zero threshold."""
     threshold = attrs["threshold"].fillna(0).to_numpy(np.int64)
-    crossed = (threshold > 0) & (attrs["value"].to_numpy(np.int64) <= threshold)
-    prefail = crossed & ((attrs["flags"].to_numpy(np.int64) & 1) == 1)
+    crossed = (threshold > 0) & (attrs["normalized"].to_numpy(np.int64) <= threshold)
+    prefail = crossed & ((attrs["status_flags"].to_numpy(np.int64) & 1) == 1)
     row = attrs["row"].to_numpy()
     any_crossed = np.zeros(n, dtype=bool)
     any_prefail = np.zeros(n, dtype=bool)
@@ -420,7 +420,7 @@ def _decode_nvme(batch: _Pending):
                             written * NVME_DATA_UNIT_BYTES)
     snap = pd.DataFrame({
         "serial": identity["serial"], "model": identity["model"], "firmware": identity["firmware"],
-        "bus": "nvme", "capacity_bytes": identity["total_capacity_bytes"],
+        "bus": "nvme", "user_capacity_bytes": identity["total_capacity_bytes"],
         "rotation_rpm": 0,  # NVMe devices are solid state
     })
     for name in ("host", "device", "slot", "group", "taken_at", "source_file"):

@@ -74,28 +74,28 @@ def render_cohorts(table: pd.DataFrame, fmt: str, out: TextIO | None = None) -> 
 def _cohort_table(table: pd.DataFrame) -> None:
     datasheet = "datasheet_afr" in table.columns
     grid = Table(title="Failure rate and life phase by cohort", title_justify="left")
-    heads = ["cohort", "drives", "drive-years", "failures", "AFR %/yr", "95 % range"]
+    heads = ["cohort", "AFR %/yr", "95 % range"]
     if datasheet:
         heads.append("datasheet AFR")
-    heads += ["Weibull shape (95 %)", "scale (years)", "phase", "note"]
+    heads += ["phase", "Weibull shape (95 %)", "scale (years)", "drives", "drive-years", "failures", "note"]
     for head in heads:
         grid.add_column(head, justify="left" if head in ("cohort", "phase", "note") else "right",
                         overflow="fold")
     for row in _records(table):
         cells = [
             escape(str(row["cohort"])),
-            str(row["drives"]),
-            _num(row["drive_days"] / 365.0, ",.1f"),
-            str(row["failures"]),
             _num(row["afr"], ".2f"),
             f"{_num(row['afr_low'], '.2f')} - {_num(row['afr_high'], '.2f')}",
         ]
         if datasheet:
             cells.append(_num(row["datasheet_afr"], ".2f"))
         cells += [
+            row["phase"],
             f"{_num(row['shape'], '.2f')} ({_num(row['shape_low'], '.2f')}-{_num(row['shape_high'], '.2f')})",
             _years(row["scale"]),
-            row["phase"],
+            str(row["drives"]),
+            _num(row["drive_days"] / 365.0, ",.1f"),
+            str(row["failures"]),
             "small sample" if row["small_sample"] else "",
         ]
         grid.add_row(*cells)

@@ -16,9 +16,9 @@ Window semantics (``now`` defaults to the newest capture in the history):
   name means the field's value there;
 * window functions look only at captures where the field has a value, and are unknown when the
   latest capture lacks it;
-* the *baseline* of ``delta/rate/before/span_days(field, days)`` is the latest capture at or
+* the *baseline* of ``growth/growth_per_day/before/span_days(field, days)`` is the latest capture at or
   before ``now - days``; when the history has none that old, the drive's earliest capture;
-* ``max_over/min_over(field, days)`` use captures taken at or after ``now - days``;
+* ``highest/lowest(field, days)`` use captures taken at or after ``now - days``;
 * ``consecutive_increases(field, n)`` is true when the last n captures each rose strictly over the
   one before (n + 1 captures, n rises); unknown with fewer than n + 1 captures.
 """
@@ -176,19 +176,19 @@ class DriveHistory:
         if len(track.values) == 0:
             return self._unknown()
         last = np.maximum(track.end - 1, 0)
-        if function in ("delta", "rate", "before", "span_days"):
+        if function in ("growth", "growth_per_day", "before", "span_days"):
             base, valid = self._baseline(name, days)
             if function == "before":
                 return Vec(Kind.NUMBER, track.values[base], valid)
-            if function == "delta":
+            if function == "growth":
                 return Vec(Kind.NUMBER, track.values[last] - track.values[base], valid)
             span = (track.times[last] - track.times[base]) / DAY_NS
             if function == "span_days":
                 return Vec(Kind.NUMBER, span, valid)
             with np.errstate(divide="ignore", invalid="ignore"):
-                rate = (track.values[last] - track.values[base]) / span
-            return Vec(Kind.NUMBER, rate, valid & (span > 0))
-        # max_over / min_over: captures in [now - days, now] are a suffix of each drive's segment
+                per_day = (track.values[last] - track.values[base]) / span
+            return Vec(Kind.NUMBER, per_day, valid & (span > 0))
+        # highest / lowest: captures in [now - days, now] are a suffix of each drive's segment
         before = self._count_at_or_before(track, self.now_ns - int(round(days * DAY_NS)), strict=True)
         start = track.first + before
         nonempty = start < track.end
@@ -197,7 +197,7 @@ class DriveHistory:
         np.add.at(marks, start[nonempty], 1)
         np.add.at(marks, track.end[nonempty], -1)
         in_window = np.cumsum(marks[:-1]) > 0
-        reduce = np.maximum if function == "max_over" else np.minimum
+        reduce = np.maximum if function == "highest" else np.minimum
         out = np.full(self.n_drives, np.nan)
         if nonempty.any():
             # window rows of consecutive drives are contiguous in the compressed array
@@ -216,7 +216,7 @@ class DriveHistory:
             return nothing
         last = track.end - 1
         valid = track.latest_known & ((track.end - track.first) >= n + 1)
-        if function == "previous":
+        if function == "captures_ago":
             index = np.where(valid, last - n, 0)
             return Vec(Kind.NUMBER, track.values[index], valid)
         rising = np.ones(self.n_drives, dtype=bool)
@@ -266,7 +266,7 @@ class DriveHistory:
         assert isinstance(argument, Literal)
         if name == "bit":
             return self.bit_value(field.name, int(argument.value))
-        if name in ("consecutive_increases", "previous"):
+        if name in ("consecutive_increases", "captures_ago"):
             return self.count_value(name, field.name, int(argument.value))
         return self.window_value(name, field.name, float(argument.value))
 

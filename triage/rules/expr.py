@@ -2,7 +2,7 @@
 
 A condition is a small expression over one drive's snapshot fields and their recent history::
 
-    delta(pending_sectors, 7) >= 8 and not prefail_tripped
+    growth(pending_sectors, 7) >= 8 and not prefail_tripped
 
 Grammar (lowest binding first; docs/rules.md has the user's version)::
 
@@ -285,33 +285,43 @@ FUNCTIONS: dict[str, FunctionSpec] = {
     spec.name: spec
     for spec in [
         FunctionSpec(
-            "delta", ("number_field", "days"), Kind.NUMBER,
-            "latest value minus the value at the baseline capture (the latest at or before "
-            "now - days; the earliest in the history when there is none)",
+            "growth", ("number_field", "days"), Kind.NUMBER,
+            "how much the reading grew: latest value minus the value at the baseline capture (the "
+            "latest at or before now - days; the earliest in the history when there is none)",
         ),
         FunctionSpec(
-            "rate", ("number_field", "days"), Kind.NUMBER,
-            "delta divided by the days between the baseline capture and the latest one",
+            "growth_per_day", ("number_field", "days"), Kind.NUMBER,
+            "growth divided by the days between the baseline capture and the latest one",
         ),
         FunctionSpec("before", ("number_field", "days"), Kind.NUMBER,
-                     "the value at the baseline capture that delta subtracts"),
+                     "the value at the baseline capture that growth subtracts"),
         FunctionSpec("span_days", ("number_field", "days"), Kind.NUMBER,
                      "days between the baseline capture and the latest capture"),
-        FunctionSpec("max_over", ("number_field", "days"), Kind.NUMBER,
-                     "largest value among captures taken in the last `days` days"),
-        FunctionSpec("min_over", ("number_field", "days"), Kind.NUMBER,
-                     "smallest value among captures taken in the last `days` days"),
+        FunctionSpec("highest", ("number_field", "days"), Kind.NUMBER,
+                     "highest reading among captures taken in the last `days` days"),
+        FunctionSpec("lowest", ("number_field", "days"), Kind.NUMBER,
+                     "lowest reading among captures taken in the last `days` days"),
         FunctionSpec(
             "consecutive_increases", ("number_field", "count"), Kind.BOOL,
             "true when each of the last n captures is larger than the capture before it",
         ),
-        FunctionSpec("previous", ("number_field", "count"), Kind.NUMBER,
-                     "the value n captures before the latest one"),
+        FunctionSpec("captures_ago", ("number_field", "count"), Kind.NUMBER,
+                     "the reading n captures before the latest one"),
         FunctionSpec("bit", ("number_field", "bit"), Kind.BOOL,
                      "true when bit k (0 = least significant) of the latest value is set"),
         FunctionSpec("is_null", ("any_field",), Kind.BOOL,
                      "true when the latest capture has no value for the field"),
     ]
+}
+
+#: Names the language used before it took words of its own (docs/rules.md, "Renamed functions").
+#: An old name is refused with its new one, never read with a meaning of its own.
+RENAMED_FUNCTIONS = {
+    "delta": "growth",
+    "rate": "growth_per_day",
+    "max_over": "highest",
+    "min_over": "lowest",
+    "previous": "captures_ago",
 }
 
 _PARAM_WORDS = {"number_field": "field", "any_field": "field", "days": "days", "count": "n", "bit": "k"}
@@ -385,6 +395,8 @@ def _start(node: Node) -> int:
 
 def _check_call(node: Call, usage: _Usage) -> Kind:
     spec = FUNCTIONS.get(node.name)
+    if spec is None and node.name in RENAMED_FUNCTIONS:
+        raise ExprError(renamed_message(node.name), node.offset)
     if spec is None:
         if node.name in FIELDS:
             raise ExprError(f"'{node.name}' is a field, not a function", node.offset)
@@ -424,6 +436,27 @@ def _check_call(node: Call, usage: _Usage) -> Kind:
             if value != int(value) or not 0 <= value <= 62:
                 raise ExprError("bit position must be a whole number from 0 to 62", arg.offset)
     return spec.result
+
+
+def renamed_message(old: str) -> str:
+    return f"'{old}' is now '{RENAMED_FUNCTIONS[old]}'"
+
+
+def renamed_calls(text: str) -> list[tuple[str, int]]:
+    """(old name, offset) of every call to a renamed function in ``text``, in order.
+
+    Read from the tokens, so a field or a word inside quotes is never taken for a call; text that
+    does not tokenize yields the calls before the bad character.
+    """
+    try:
+        tokens = tokenize(text)
+    except ExprError as exc:
+        tokens = tokenize(text[: exc.offset])
+    return [
+        (token.text, token.offset)
+        for token, after in zip(tokens, tokens[1:])
+        if token.kind == "name" and token.text in RENAMED_FUNCTIONS and after.kind == "op" and after.text == "("
+    ]
 
 
 @dataclass(frozen=True)

@@ -21,10 +21,10 @@ from importlib import resources
 from pathlib import Path
 from typing import Any, Mapping, Sequence
 
-from triage.rules.expr import ExprError, compile_expression
+from triage.rules.expr import ExprError, compile_expression, renamed_calls, renamed_message
 from triage.rules.fields import Kind
 from triage.rules.model import Category, Rule, RuleError, RuleSet, Severity
-from triage.rules.template import compile_template
+from triage.rules.template import compile_template, renamed_calls_in_template
 
 REQUIRED_KEYS = ("id", "title", "severity", "category", "when", "explain")
 OPTIONAL_KEYS = ("source", "enabled")
@@ -34,6 +34,7 @@ _ID = re.compile(r"[a-z0-9]+(?:[._-][a-z0-9]+)*")
 _RULE_HEADER = re.compile(r"^\s*\[\[\s*rule\s*\]\]\s*(?:#.*)?$")
 _ANY_HEADER = re.compile(r"^\s*\[")
 _KEY_LINE = re.compile(r"""^\s*(?:"([^"]*)"|'([^']*)'|([A-Za-z0-9_-]+))\s*=""")
+_OPENS_MULTILINE = re.compile(r"=\s*(?:\"\"\"|\'\'\')\s*$")  # TOML drops the newline right after it
 _TOML_POSITION = re.compile(r"\s*\(at line (\d+), column (\d+)\)$")
 
 
@@ -66,6 +67,14 @@ class _Bad(Exception):
         self.message = message
 
 
+class _Renamed(Exception):
+    """A rule calls functions by their old names: one (line, message) per call."""
+
+    def __init__(self, uses: list[tuple[int, str]]):
+        super().__init__(uses)
+        self.uses = uses
+
+
 @dataclass
 class _FileText:
     """Line lookup for one rule file."""
@@ -94,6 +103,11 @@ class _FileText:
             if match and key in match.groups():
                 return number
         return None
+
+    def value_line(self, key_line: int, offset: int, value: str) -> int:
+        """The line of ``offset`` into the string value of the key at ``key_line``."""
+        opens_alone = _OPENS_MULTILINE.search(self.lines[key_line - 1]) is not None
+        return key_line + int(opens_alone) + value.count("\n", 0, offset)
 
     def top_level_key_line(self, key: str) -> int:
         stop = self.headers[0] - 1 if self.headers else len(self.lines)
@@ -169,8 +183,22 @@ def _load_file(
         except _Bad as bad:
             errors.append(RuleError(path, bad.line, bad.message))
             continue
+        except _Renamed as renamed:
+            errors += [RuleError(path, line, message) for line, message in renamed.uses]
+            continue
         seen_here[rule.id] = f"{path}:{start}"
         effective[rule.id] = rule
+
+
+def _refuse_old_names(table: Mapping[str, Any], at, lines: _FileText) -> None:
+    """Raise _Renamed when ``when`` or ``explain`` calls a function by a name it no longer has."""
+    uses = []
+    for key, finder in (("when", renamed_calls), ("explain", renamed_calls_in_template)):
+        value = table.get(key)
+        if isinstance(value, str):
+            uses += [(lines.value_line(at(key), offset, value), renamed_message(old)) for old, offset in finder(value)]
+    if uses:
+        raise _Renamed(uses)
 
 
 def _build(
@@ -213,6 +241,7 @@ def _build(
             raise _Bad(at(key), f"{label}: '{key}' must be a non-empty string")
         return value
 
+    _refuse_old_names(table, at, lines)
     title = text("title")
     try:
         severity = Severity(text("severity"))

@@ -182,8 +182,8 @@ class RuleSet:
         """How many days of history a caller should read back from ``now``.
 
         The longest window of any enabled rule, rounded up, plus one day so that the capture
-        at or before the window's start (the baseline of ``delta``) is in the frame when captures
-        are daily. At least 1. ``consecutive_increases`` and ``previous`` count captures, not
+        at or before the window's start (the baseline of ``growth``) is in the frame when captures
+        are daily. At least 1. ``consecutive_increases`` and ``captures_ago`` count captures, not
         days: they see only what is in the frame.
         """
         longest = max([0.0, *(r.max_days for r in self.rules)])

@@ -2,7 +2,7 @@
 
 A template is text with ``{expression}`` or ``{expression:format}`` placeholders; each expression is
 in the rule language (``{pending_sectors}``, ``{before(pending_sectors, 7)}``,
-``{rate(crc_errors, 7):.1f}``) and is evaluated only for the drives where the rule fired.
+``{growth_per_day(crc_errors, 7):.1f}``) and is evaluated only for the drives where the rule fired.
 ``{{`` and ``}}`` stand for literal braces. The format part is Python's format mini-language for
 numbers (``.1f``, ``d``, ``,``).
 """
@@ -13,8 +13,9 @@ import re
 from dataclasses import dataclass
 from typing import Union
 
-from triage.rules.expr import ExprError, Expression, compile_expression
+from triage.rules.expr import ExprError, Expression, compile_expression, renamed_calls
 
+_PLACEHOLDER = re.compile(r"\{\{|\}\}|\{([^}]*)\}")
 _SPEC = re.compile(r"[<>=^]?[+\- ]?#?0?\d*[,_]?(?:\.\d+)?[bdeEfFgGn%]?")
 
 
@@ -78,6 +79,16 @@ def compile_template(text: str) -> Template:
     if literal:
         parts.append("".join(literal))
     return Template(text, tuple(parts))
+
+
+def renamed_calls_in_template(text: str) -> list[tuple[str, int]]:
+    """(old name, offset into ``text``) of every call to a renamed function in the placeholders."""
+    uses = []
+    for match in _PLACEHOLDER.finditer(text):
+        if match.group(1) is not None:
+            body = match.group(1).partition(":")[0]
+            uses += [(name, match.start(1) + offset) for name, offset in renamed_calls(body)]
+    return uses
 
 
 def format_value(value: object, known: bool, spec: str = "") -> str:

@@ -8,6 +8,7 @@ Layout (a public contract; other engines read the tables directly)::
     <root>/quarantine/<batch>.jsonl                         rejected input lines, with reasons
     <root>/models/                                          fitted models (survival layer)
     <root>/_manifest.jsonl                                  one line per committed batch
+    <root>/_format.json                                     the layout's version (schema.STORE_FORMAT)
     <root>/_lock                                            held while a writer runs
 
 How a commit stays atomic: every Parquet file is written under a dot-name (which readers
@@ -15,6 +16,12 @@ skip), flushed to disk, then renamed into place; the manifest line that records 
 its source files is appended last. A crash leaves only whole files visible. Rerunning the same
 input completes the batch: the source files are not in the manifest yet, so they are read again,
 and rows whose key is already stored (``schema.TABLES``) are dropped before writing.
+
+How an older store is brought up to date: the first ``read`` or ``commit`` that finds an older
+``_format.json`` (or none beside existing tables: format 1) takes the writer lock and rewrites
+each Parquet file that still has old column names (``schema.RENAMED_SINCE``) with the new names,
+each file atomically as above; ``_format.json`` is replaced last. Values are copied untouched.
+A crash part-way leaves the old format recorded, and the next run converts the files left.
 """
 
 from __future__ import annotations
@@ -38,15 +45,20 @@ import pyarrow.compute as pc
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
-from triage.store.schema import PARTITION_COLUMN, TABLES
+from triage.store.schema import PARTITION_COLUMN, RENAMED_SINCE, STORE_FORMAT, TABLES
 
 MANIFEST = "_manifest.jsonl"
+FORMAT_FILE = "_format.json"
 LOCK = "_lock"
 PARTITIONING = ds.partitioning(pa.schema([(PARTITION_COLUMN, pa.string())]), flavor="hive")
 
 
 class StoreLocked(RuntimeError):
     """Another process holds the store's writer lock."""
+
+
+class StoreFormatError(RuntimeError):
+    """The store was written by a newer triage, or its format file is unreadable."""
 
 
 @dataclass(frozen=True)
@@ -69,6 +81,8 @@ def new_batch_id(now: datetime | None = None) -> str:
 class Store:
     def __init__(self, root: Path | str):
         self.root = Path(root)
+        self._holding_lock = False
+        self._format_current = False
 
     # -- places ---------------------------------------------------------------------------
     @property
@@ -98,9 +112,65 @@ class Store:
                 raise
             os.ftruncate(fd, 0)
             os.write(fd, f"{os.getpid()}\n".encode())
+            self._holding_lock = name == LOCK
             yield
         finally:
+            if name == LOCK:
+                self._holding_lock = False
             os.close(fd)  # closing releases the flock
+
+    # -- format ---------------------------------------------------------------------------
+    def format_version(self) -> int | None:
+        """The layout version on disk; None for a store with no table yet."""
+        path = self.root / FORMAT_FILE
+        if path.exists():
+            try:
+                version = json.loads(path.read_text(encoding="utf-8"))["store_format"]
+            except (json.JSONDecodeError, KeyError, TypeError):
+                raise StoreFormatError(f"{path}: not a store format file (expected {{\"store_format\": N}})") from None
+            if not isinstance(version, int):
+                raise StoreFormatError(f"{path}: store_format {version!r} is not a whole number")
+            return version
+        if any((self.root / table).is_dir() for table in TABLES):
+            return 1
+        return None
+
+    def upgrade(self) -> None:
+        """Bring an older store up to ``STORE_FORMAT`` (module docstring); refuse a newer one.
+
+        ``read`` and ``commit`` call it; the command line calls it first so that a held lock or a
+        newer format is one line. Raises StoreLocked or StoreFormatError.
+        """
+        if self._format_current:
+            return
+        version = self.format_version()
+        if version is not None and version > STORE_FORMAT:
+            raise StoreFormatError(f"{self.root}: store format {version} is newer than this triage reads "
+                                   f"({STORE_FORMAT}); upgrade triage")
+        if version is not None and version < STORE_FORMAT:
+            if self._holding_lock:
+                self._convert(version)
+            else:
+                with self.lock():
+                    self._convert(self.format_version() or STORE_FORMAT)
+        self._format_current = True
+
+    def _convert(self, version: int) -> None:
+        for step in range(version + 1, STORE_FORMAT + 1):
+            for table, renames in RENAMED_SINCE.get(step, {}).items():
+                root = self.root / table
+                for path in sorted(root.glob(f"{PARTITION_COLUMN}=*/part-*.parquet")) if root.is_dir() else []:
+                    _rename_columns(path, renames)
+        self._write_format()
+
+    def _write_format(self) -> None:
+        self.root.mkdir(parents=True, exist_ok=True)
+        final = self.root / FORMAT_FILE
+        temp = self.root / f".{FORMAT_FILE}.tmp"
+        temp.write_text(json.dumps({"store_format": STORE_FORMAT}) + "\n", encoding="utf-8")
+        _fsync_file(temp)
+        os.replace(temp, final)
+        _fsync_dir(self.root)
 
     # -- manifest -------------------------------------------------------------------------
     def manifest(self) -> list[dict]:
@@ -146,6 +216,9 @@ class Store:
         """Write a batch atomically (see module docstring); returns new rows per table."""
         batch = batch or new_batch_id()
         self.root.mkdir(parents=True, exist_ok=True)
+        self.upgrade()
+        if self.format_version() is None:
+            self._write_format()
         written = {}
         for table, frame in frames.items():
             written[table] = self._write_table(table, frame, batch)
@@ -232,6 +305,7 @@ class Store:
         with NaN (pandas' default), booleans holding nulls as object.
         """
         schema, time_column, _ = TABLES[table]
+        self.upgrade()
         wanted = list(columns) if columns is not None else schema.names
         unknown = [c for c in wanted if c not in schema.names]
         if unknown:
@@ -260,6 +334,20 @@ class Store:
             return []
         prefix = f"{PARTITION_COLUMN}="
         return sorted(p.name[len(prefix):] for p in root.iterdir() if p.name.startswith(prefix))
+
+
+def _rename_columns(path: Path, renames: Mapping[str, str]) -> None:
+    """Rewrite one Parquet file with ``renames`` applied, atomically; a file already renamed is left."""
+    names = pq.read_schema(path).names
+    if not any(name in renames for name in names):
+        return
+    table = pq.ParquetFile(path).read()
+    renamed = table.rename_columns([renames.get(name, name) for name in names])
+    temp = path.with_name(f".{path.name}.tmp")
+    pq.write_table(renamed, temp, compression="zstd")
+    _fsync_file(temp)
+    os.replace(temp, path)
+    _fsync_dir(path.parent)
 
 
 def _key_codes(rows: pa.Table, key: list[str]) -> list[np.ndarray]:

@@ -1,8 +1,10 @@
 """The store's table schemas: the one place they are defined.
 
 The store is a public contract: other engines read these Hive-partitioned Parquet tables
-directly (``<table>/day=YYYY-MM-DD/part-*.parquet``), so a column is never renamed or retyped
-in place. Add columns at the end; never reuse a name with a new meaning.
+directly (``<table>/day=YYYY-MM-DD/part-*.parquet``), so a column is never retyped in place, and
+renamed only together with a new ``STORE_FORMAT`` and its entry in ``RENAMED_SINCE`` (an older
+store is converted when this code first opens it: ``triage.store.dataset``). Add columns at the
+end; never reuse a name with a new meaning.
 
 Integers are signed 64-bit even where the standard field is wider (NVMe counters are 128-bit):
 values beyond 2**63-1 are saturated at that maximum on ingest, which no real drive reaches
@@ -24,7 +26,7 @@ SNAPSHOTS = pa.schema(
         ("model", pa.string()),
         ("firmware", pa.string()),
         ("bus", pa.string()),  # "ata" | "nvme"
-        ("capacity_bytes", pa.int64()),
+        ("user_capacity_bytes", pa.int64()),  # user-addressable capacity (ATA words 100-103; NVMe TNVMCAP)
         ("rotation_rpm", pa.int32()),  # 0 = solid state, null = not reported
         ("wwn", pa.string()),  # 16 hex digits (ATA words 108-111); null when absent / NVMe
         ("host", pa.string()),
@@ -61,12 +63,13 @@ ATTRIBUTES = pa.schema(
     [
         ("serial", pa.string()),
         ("taken_at", TIMESTAMP),
-        ("id", pa.int32()),
-        ("flags", pa.int32()),
-        ("value", pa.int32()),
-        ("worst", pa.int32()),
+        # SFF-8035i attribute entry fields, by the standard's names in full
+        ("attribute_id", pa.int32()),
+        ("status_flags", pa.int32()),
+        ("normalized", pa.int32()),  # normalized value, 1-253
+        ("worst_normalized", pa.int32()),  # worst normalized value the drive has recorded
         ("threshold", pa.int32()),  # null when the capture had no thresholds sector
-        ("raw", pa.int64()),  # 48-bit raw value, little-endian as stored by the drive
+        ("raw_value", pa.int64()),  # 48-bit raw value, little-endian as stored by the drive
     ]
 )
 
@@ -89,8 +92,27 @@ REMOVAL_REASONS = ("failed", "proactive", "retired")
 #: table name -> (schema, timestamp column that decides the day partition, dedup key)
 TABLES = {
     "snapshots": (SNAPSHOTS, "taken_at", ("serial", "taken_at")),
-    "attributes": (ATTRIBUTES, "taken_at", ("serial", "taken_at", "id")),
+    "attributes": (ATTRIBUTES, "taken_at", ("serial", "taken_at", "attribute_id")),
     "removals": (REMOVALS, "removed_at", ("serial", "removed_at", "reason")),
+}
+
+#: Version of the store's layout, kept in ``<store>/_format.json``; a store without that file was
+#: written by format 1.
+STORE_FORMAT = 2
+
+#: format -> {table: {old column: new column}}: the renames that format introduced.
+#: 2: the attribute entry fields and the capacity take the standards' names in full.
+RENAMED_SINCE = {
+    2: {
+        "snapshots": {"capacity_bytes": "user_capacity_bytes"},
+        "attributes": {
+            "id": "attribute_id",
+            "flags": "status_flags",
+            "value": "normalized",
+            "worst": "worst_normalized",
+            "raw": "raw_value",
+        },
+    },
 }
 
 #: ATA SMART attribute ids kept as snapshot columns (SFF-8035i ids; meanings are common

@@ -19,9 +19,10 @@ from triage.survival.weibull import WeibullFit, fit_weibull
 SMALL_DRIVES = 50
 SMALL_DRIVE_YEARS = 100.0
 
-#: The keys of each ``triage cohorts`` row, in order (the JSON contract; more may follow).
-COHORT_KEYS = ("cohort", "drives", "drive_days", "failures", "afr", "afr_low", "afr_high",
-               "shape", "shape_low", "shape_high", "scale", "phase", "small_sample")
+#: The keys of each ``triage cohorts`` row, in order (the JSON contract; more may follow). The
+#: interval and the life phase with its shape interval lead; exposure and counts follow.
+COHORT_KEYS = ("cohort", "afr", "afr_low", "afr_high", "phase", "shape", "shape_low", "shape_high",
+               "scale", "drives", "drive_days", "failures", "small_sample")
 
 
 def is_small(drives: int, drive_days: float) -> bool:
@@ -48,17 +49,17 @@ def cohort_table(obs: Observations, mttf_hours: float | None = None, weibull: bo
             fit = WeibullFit(*(math.nan,) * 6, phase="not fitted", failures=failures)
         row = {
             "cohort": label,
-            "drives": int(len(group)),
-            "drive_days": drive_days,
-            "failures": failures,
             "afr": afr,
             "afr_low": afr_low,
             "afr_high": afr_high,
+            "phase": fit.phase,
             "shape": fit.shape,
             "shape_low": fit.shape_low,
             "shape_high": fit.shape_high,
             "scale": fit.scale,
-            "phase": fit.phase,
+            "drives": int(len(group)),
+            "drive_days": drive_days,
+            "failures": failures,
             "small_sample": is_small(len(group), drive_days),
         }
         if datasheet is not None:

@@ -31,7 +31,9 @@ from typing import Callable, Iterable, Sequence
 import numpy as np
 import pandas as pd
 
-COHORT_COLUMNS = ("model", "firmware", "bus", "capacity_bytes")
+COHORT_COLUMNS = ("model", "firmware", "bus", "user_capacity_bytes")
+#: Cohort keys that were renamed with their store column (store format 2): old -> new.
+RENAMED_COHORT_KEYS = {"capacity_bytes": "user_capacity_bytes"}
 
 #: Snapshot columns the covariates are built from (all read with projection; nothing else is).
 COVARIATE_SOURCES = (
@@ -139,6 +141,9 @@ def check_by(by: Sequence[str] | str) -> tuple[str, ...]:
     if isinstance(by, str):
         by = [part.strip() for part in by.split(",") if part.strip()]
     by = tuple(by)
+    renamed = [c for c in by if c in RENAMED_COHORT_KEYS]
+    if renamed:
+        raise ValueError("; ".join(f"cohort key '{c}' is now '{RENAMED_COHORT_KEYS[c]}'" for c in renamed))
     unknown = [c for c in by if c not in COHORT_COLUMNS]
     if not by or unknown:
         raise ValueError(f"cohort keys must be among {', '.join(COHORT_COLUMNS)}; got {', '.join(by) or 'nothing'}")
@@ -163,7 +168,7 @@ def cohort_labels(frame: pd.DataFrame, by: Sequence[str]) -> pd.Series:
     parts = []
     for column in by:
         values = frame[column]
-        if column == "capacity_bytes":
+        if column == "user_capacity_bytes":
             uniques = pd.unique(values)
             mapping = {v: format_capacity(v) for v in uniques}
             parts.append(values.map(mapping).astype(str))
