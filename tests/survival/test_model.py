@@ -159,14 +159,6 @@ def test_a_model_saved_in_the_previous_format_asks_for_a_refit(fitted, tmp_path)
         FleetRiskModel.load(path)
 
 
-def test_a_model_saved_with_the_old_capacity_cohort_key_reads_it_by_its_new_name(fitted, tmp_path):
-    path = fitted.save(tmp_path)
-    meta = json.loads((path / "model.json").read_text())
-    meta["config"]["by"] = ["model", "capacity_bytes"]  # as a fit before store format 2 saved it
-    (path / "model.json").write_text(json.dumps(meta))
-    assert FleetRiskModel.load(path).by == ("model", "user_capacity_bytes")
-
-
 def test_an_unfitted_model_says_so():
     with pytest.raises(ValueError, match="not fitted"):
         FleetRiskModel().predict_fail_probability(pd.DataFrame({"serial": [], "power_on_hours": []}))
