@@ -34,8 +34,13 @@ Gaussian penalty (a prior), and the fit maximises the penalised log-likelihood
   (the shrinkage of a Gaussian random effect);
 * cohort x age band: ``age_cohort^2 / s_shape^2`` -- each cohort may bend the fleet's age curve
   (wear-out, early life), pulled to the fleet's shape when its own failures are few;
-* covariates: ``beta^2 * ridge`` -- a small ridge, only so that a warning seen on failing drives
-  alone cannot send its coefficient to infinity.
+* covariates: ``beta^2 * ridge`` (ridge 1: a prior standard deviation of 1 on each log rate
+  ratio) -- so that a warning seen on a handful of failing drives cannot send its coefficient,
+  and the top decile's forecast, to infinity.
+
+Windows of H days started every ``step_days`` overlap, so each drive-day sits in about
+``H / step`` rows; each row is weighted ``step / H`` so that the data count once against the
+penalties (and the standard errors are not H / step times too small).
 
 The prior widths are our choice (common practice, no source); ``benchmarks/calibration.py``
 measures the calibration they give.
@@ -431,7 +436,7 @@ class LandmarkModel:
     """
 
     def __init__(self, horizon_days: float = 30, by: Sequence[str] = ("model",), age_sd: float = 0.5,
-                 cohort_sd: float = 1.0, shape_sd: float = 0.5, ridge: float = 0.1, step_days: float = STEP_DAYS):
+                 cohort_sd: float = 1.0, shape_sd: float = 0.5, ridge: float = 1.0, step_days: float = STEP_DAYS):
         self.horizon_days = horizon_days
         self.step_days = step_days
         self.by = tuple(by)
