@@ -79,8 +79,9 @@ GROWTH_FEATURES = ("growth_reallocated", "growth_pending", "growth_uncorrectable
 SELF_ASSESSMENT = "self_assessment"
 LANDMARK_FEATURES = (*FEATURES, *GROWTH_FEATURES, SELF_ASSESSMENT)
 #: Snapshot columns the landmark states are built from.
+PLACE_COLUMNS = ("host", "slot", "group")
 STATE_SOURCES = (
-    "serial", "taken_at", "power_on_hours", *COHORT_COLUMNS,
+    "serial", "taken_at", "power_on_hours", *COHORT_COLUMNS, *PLACE_COLUMNS,
     "temperature_c", "reallocated_sectors", "reallocation_events", "pending_sectors",
     "offline_uncorrectable", "reported_uncorrectable", "command_timeouts",
     "nvme_critical_warning", "nvme_spare_pct", "nvme_spare_threshold_pct", "nvme_media_errors",
@@ -192,7 +193,7 @@ def _drop_removed(latest: pd.DataFrame, removals: pd.DataFrame | None, moment: p
 
 
 def _empty_state() -> pd.DataFrame:
-    columns = ["serial", "taken_at", "age_hours", *COHORT_COLUMNS, *LANDMARK_FEATURES]
+    columns = ["serial", "taken_at", "age_hours", *COHORT_COLUMNS, *PLACE_COLUMNS, *LANDMARK_FEATURES]
     return pd.DataFrame({c: pd.Series(dtype=float if c in (*LANDMARK_FEATURES, "age_hours") else object)
                          for c in columns})
 
@@ -213,8 +214,8 @@ def state_features(latest: pd.DataFrame, moment: pd.Timestamp, base: pd.DataFram
         return _empty_state()
     poh = pd.to_numeric(latest["power_on_hours"], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     since = (moment - pd.to_datetime(latest["taken_at"], utc=True)).dt.total_seconds().to_numpy() / 3600
-    out = latest[["serial", "taken_at", *[c for c in COHORT_COLUMNS if c in latest.columns]]].copy()
-    for column in COHORT_COLUMNS:
+    out = latest[["serial", "taken_at", *[c for c in (*COHORT_COLUMNS, *PLACE_COLUMNS) if c in latest.columns]]].copy()
+    for column in (*COHORT_COLUMNS, *PLACE_COLUMNS):
         if column not in out:
             out[column] = None
     out["age_hours"] = poh + since  # fleet drives run around the clock

@@ -354,6 +354,27 @@ class FleetRiskModel:
         return model
 
 
+def fit_until(read: Callable, removals: pd.DataFrame, first_taken_at, as_of, horizon_days: float,
+              by: Sequence[str] = ("model",), count_proactive: bool = False,
+              progress: Callable[[int, int], None] | None = None,
+              **priors) -> tuple[LandmarkModel, pd.DataFrame]:
+    """The landmark model fitted on what was known at ``as_of``, and the drives' states then.
+
+    Landmarks run weekly up to ``as_of``; their windows and the removal log are cut at ``as_of``,
+    so nothing after it is used (a forecast or a backtest night scored as it would have been).
+    Raises ``FitError`` when no failure was known by then.
+    """
+    as_of = utc(as_of)
+    removals = clean_removals(removals)
+    removals = removals[removals["removed_at"] <= as_of]
+    marks = [m for m in landmark_dates(first_taken_at, as_of) if m < as_of] + [as_of]
+    states = landmark_states(read, marks, removals, progress=progress)
+    train = states[states["landmark"] < as_of]
+    outcomes = window_outcomes(train, removals, float(horizon_days), as_of, event_reasons(count_proactive))
+    model = LandmarkModel(horizon_days=horizon_days, by=check_by(by), **priors).fit(train, outcomes)
+    return model, states[states["landmark"] == as_of].reset_index(drop=True)
+
+
 def clean_removals(removals: pd.DataFrame | None) -> pd.DataFrame:
     """serial, removed_at (UTC), reason; rows lacking a serial or a time dropped."""
     if removals is None or removals.empty:
@@ -417,5 +438,5 @@ def _num(value) -> float | None:
     return None if value is None or (isinstance(value, float) and math.isnan(value)) else float(value)
 
 
-__all__ = ["FleetRiskModel", "latest_model", "calibration_table", "ModelFormatError", "clean_removals",
+__all__ = ["FleetRiskModel", "latest_model", "calibration_table", "ModelFormatError", "clean_removals", "fit_until",
            "event_reasons", "COHORT_COLUMNS", "COVARIATE_SOURCES", "ACTIVE_DAYS", "GROWTH_DAYS"]
