@@ -1,0 +1,334 @@
+"""Would these flags have caught the failures? Replay the stored history night by night.
+
+Each scored night uses only what was known by its end (UTC midnight after the night's date):
+the rules see the captures of their window up to then; the model is refitted on the landmark
+rows before then (every ``refit_days``) with windows and removals cut there; the drives scored
+are those in service then (seen in the week before, not removed). The replay reads one day of
+captures at a time and keeps only a rule window of them plus a few rows per drive
+(``landmark.StateTracker``): the work per night does not grow with the history.
+
+Definitions (drive level, as in the disk-failure prediction literature: Hughes, Murray,
+Kreutz-Delgado & Elkan, "Improved disk-drive failure warnings", IEEE Trans. Reliability 51(3),
+2002; Murray, Hughes & Kreutz-Delgado, JMLR 6, 2005):
+
+* a failure (a removal with an event reason) is in the recall denominator when at least one
+  scored night lies within the H days before it; it is *caught* by a method when the method
+  flags its drive on such a night; ``recall = caught / failures``; lead time = failure time
+  minus the first such flagged night (end of day);
+* a *false-alarm drive* is one flagged on a scored night after which it did not fail within H
+  days; ``false_alarm_rate = false_alarm_drives / scored_drives`` (drives in service on a scored
+  night). A night whose H days reach past the stored data cannot yet say "did not fail": the last
+  scored night by default is the last one with H days of data after it.
+
+Methods: ``rule:<id>`` (that rule fired), ``severity:<name>`` (a rule of that severity or a
+worse one fired), ``drive-self-assessment`` (the drive's own verdict: an ATA pre-failure
+attribute at or below its threshold, or any NVMe critical-warning bit), and ``combined``: the
+ranking score ``1 - (1 - w_severity) * (1 - p_fail)`` (docs/ranking.md, without the group term)
+at the operating point -- the lowest threshold, i.e. the highest recall, whose false-alarm rate
+stays within ``max_false_alarm``. The whole recall / false-alarm curve of the score comes along.
+
+Forecast check: at each refit the model also forecasts the failures of the next H days among the
+drives in service, fleet-wide and per cohort, with the 90 % Poisson-binomial interval of
+``forecast``; the share of intervals holding the observed count is the coverage.
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from dataclasses import dataclass, field
+from typing import Callable, Sequence
+
+import numpy as np
+import pandas as pd
+
+from triage.risk.forecast import INTERVAL, pmf_quantile, poisson_binomial_pmf
+from triage.risk.score import SEVERITIES, SEVERITY_WEIGHT
+
+METHOD_COLUMNS = ("method", "failures", "caught", "recall", "false_alarm_drives", "scored_drives",
+                  "false_alarm_rate", "lead_days_median")
+SELF_ASSESSMENT_METHOD = "drive-self-assessment"
+COMBINED_METHOD = "combined"
+#: Points kept of the recall / false-alarm curve.
+CURVE_POINTS = 200
+
+_NS_PER_DAY = 86_400_000_000_000
+
+
+class BacktestError(ValueError):
+    """The backtest cannot run (history too short, no failure, a date outside the data)."""
+
+
+@dataclass
+class BacktestResult:
+    horizon_days: float
+    first_night: pd.Timestamp
+    last_night: pd.Timestamp
+    training_days: int
+    refit_days: int
+    max_false_alarm: float
+    methods: pd.DataFrame  # METHOD_COLUMNS
+    operating_point: dict
+    curve: pd.DataFrame  # score_threshold, recall, false_alarm_rate
+    forecasts: pd.DataFrame  # origin, scope, name, drives, expected, interval_low, interval_high, observed, inside
+    refits: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def forecast_coverage(self) -> float | None:
+        return float(self.forecasts["inside"].mean()) if len(self.forecasts) else None
+
+
+class _Method:
+    """Per-method drive-level tallies: the first flagged night before each failure, false alarms."""
+
+    def __init__(self) -> None:
+        self.first_caught: dict[int, int] = {}  # failure index -> first flagged night (ns)
+        self.false_alarm: set[int] = set()  # drive codes
+
+    def update(self, flagged: np.ndarray, positive_failure: np.ndarray, negative: np.ndarray,
+               codes: np.ndarray, moment_ns: int) -> None:
+        for failure in positive_failure[flagged & (positive_failure >= 0)]:
+            self.first_caught.setdefault(int(failure), moment_ns)
+        self.false_alarm.update(codes[flagged & negative].tolist())
+
+
+def backtest_store(store, ruleset, horizon_days: float = 30, max_false_alarm: float = 0.01,
+                   first_night=None, last_night=None, refit_days: int = 30, by: Sequence[str] = ("model",),
+                   count_proactive: bool = False, evaluate: Callable | None = None,
+                   progress: Callable[[int, int], None] | None = None) -> BacktestResult:
+    """Replay ``store`` night by night and score every method (module docstring)."""
+    from triage.survival.landmark import (  # noqa: PLC0415  (survival layer, to our left)
+        STATE_SOURCES, STEP_DAYS, FitError, LandmarkModel, StateTracker, utc, window_outcomes)
+    from triage.survival.model import clean_removals, event_reasons  # noqa: PLC0415
+    from triage.survival.observations import cohort_labels  # noqa: PLC0415
+
+    if evaluate is None:
+        from triage.rules import evaluate  # noqa: PLC0415  (rules layer, to our left)
+    if not 0 < max_false_alarm < 1:
+        raise BacktestError(f"--max-false-alarm must lie strictly between 0 and 1, got {max_false_alarm}")
+    if not horizon_days > 0:
+        raise BacktestError(f"--horizon-days must be positive, got {horizon_days}")
+    if refit_days < 1:
+        raise BacktestError(f"--refit-days must be at least 1, got {refit_days}")
+    H = float(horizon_days)
+    days = store.days("snapshots")
+    if not days:
+        raise BacktestError(f"{store.root}: no snapshots stored (run 'triage ingest' first, or check --store)")
+    data_first = pd.Timestamp(days[0], tz="UTC")
+    last_day = pd.Timestamp(days[-1], tz="UTC")
+    newest = store.read("snapshots", columns=["taken_at"], since=last_day.to_pydatetime())
+    data_end = pd.to_datetime(newest["taken_at"], utc=True).max()
+    # the tool's training period: two horizons, so that the first fit has H days of outcomes on
+    # at least H days of landmarks (and never less than four weeks)
+    training_days = int(max(2 * np.ceil(H), 28))
+    default_first = data_first + pd.Timedelta(days=training_days)
+    default_last = (data_end - pd.Timedelta(days=H)).normalize() - pd.Timedelta(days=1)
+    first = default_first if first_night is None else utc(first_night).normalize()
+    last = min(default_last, last_day) if last_night is None else utc(last_night).normalize()
+    span = f"{data_first:%Y-%m-%d} to {last_day:%Y-%m-%d}"
+    for name, night in (("--from", first_night), ("--to", last_night)):
+        if night is not None and not data_first <= utc(night).normalize() <= last_day:
+            raise BacktestError(f"{name} {utc(night):%Y-%m-%d} is outside the stored history ({span})")
+    if first_night is not None and first < data_first + pd.Timedelta(days=14):
+        raise BacktestError(f"--from {first:%Y-%m-%d} leaves under two weeks to train on (history starts {days[0]})")
+    if last < first:
+        raise BacktestError(
+            f"the history ({span}) is too short to backtest a {H:g}-day horizon: it needs {training_days} "
+            f"days to train, then nights with {H:g} days of data after them")
+
+    removals = clean_removals(store.read("removals", columns=["serial", "removed_at", "reason"]))
+    events = event_reasons(count_proactive)
+    fail_rows = removals[removals["reason"].isin(events)].reset_index(drop=True)
+    fail_serial = fail_rows["serial"].to_numpy(dtype=object)
+    fail_ns = _ns(fail_rows["removed_at"])
+    first_moment_ns = (first + pd.Timedelta(days=1)).value
+    last_moment_ns = (last + pd.Timedelta(days=1)).value
+    # in the denominator: some scored night (moment m) with f - H <= m < f
+    in_denominator = (fail_ns > first_moment_ns) & (fail_ns - int(H * _NS_PER_DAY) <= last_moment_ns)
+    if not in_denominator.any():
+        raise BacktestError(f"no failure ({' or '.join(events)} removal) falls within {H:g} days after a scored "
+                            f"night ({first:%Y-%m-%d} to {last:%Y-%m-%d}): nothing to catch")
+
+    rules = list(ruleset.rules)
+    methods: dict[str, _Method] = {SELF_ASSESSMENT_METHOD: _Method()}
+    methods.update({f"severity:{s}": _Method() for s in SEVERITIES})
+    methods.update({f"rule:{r.id}": _Method() for r in rules})
+    severity_rank = {s: i for i, s in enumerate(SEVERITIES)}  # 0 = worst
+    codes_of: dict[str, int] = {}
+    scored_drives: set[int] = set()
+    pos_max = np.full(len(fail_rows), -1.0)  # best combined score on a night before each failure
+    pos_nights: list[tuple[np.ndarray, int, np.ndarray]] = []  # (failure idx, moment, score) for lead times
+    neg_max: dict[int, float] = {}
+    forecasts: list[dict] = []
+    refits: list[str] = []
+    notes: list[str] = []
+
+    lookback = max(int(getattr(ruleset, "window_days", 1) or 1), 1)
+    columns = sorted(set(STATE_SOURCES) | set(ruleset.fields) | {"serial", "taken_at"})
+    from triage.store.schema import SNAPSHOTS  # noqa: PLC0415  (store layer, to our left)
+
+    columns = [c for c in columns if c in SNAPSHOTS.names]
+    window: deque[tuple[pd.Timestamp, pd.DataFrame]] = deque()
+    tracker = StateTracker()
+    landmark_frames: list[pd.DataFrame] = []
+    model, last_fit = None, None
+    nights = pd.date_range(data_first, last, freq="D")
+    for k, day in enumerate(nights):
+        if progress:
+            progress(k, len(nights))
+        frame = store.read("snapshots", columns=columns, since=day.to_pydatetime(),
+                           until=(day + pd.Timedelta(days=1)).to_pydatetime())
+        moment = day + pd.Timedelta(days=1)
+        known_removals = removals[removals["removed_at"] <= moment]
+        tracker.add(frame)
+        window.append((day, frame))
+        while window and window[0][0] < moment - pd.Timedelta(days=lookback + 1):
+            window.popleft()
+        if (moment - data_first) >= pd.Timedelta(days=STEP_DAYS) and (moment - data_first).days % STEP_DAYS == 0:
+            state = tracker.state_at(moment, known_removals)
+            if len(state):
+                landmark_frames.append(state.assign(landmark=moment))
+        tracker.mark(moment)
+        if day < first:
+            continue
+
+        if last_fit is None or (moment - last_fit) >= pd.Timedelta(days=refit_days):
+            last_fit = moment
+            train = pd.concat(landmark_frames, ignore_index=True) if landmark_frames else None
+            try:
+                if train is None:
+                    raise FitError("no landmark yet")
+                train = train[train["landmark"] < moment]
+                outcomes = window_outcomes(train, known_removals, H, moment, events)
+                model = LandmarkModel(horizon_days=H, by=by).fit(train, outcomes)
+                refits.append(f"{day:%Y-%m-%d}")
+            except FitError as exc:
+                model = None
+                notes.append(f"{day:%Y-%m-%d}: no model ({exc}); the combined score is the rules' alone until the next refit")
+            forecast_origin = model is not None and moment + pd.Timedelta(days=H) <= data_end
+        else:
+            forecast_origin = False
+
+        state = tracker.state_at(moment, known_removals)
+        if state.empty:
+            continue
+        serials = state["serial"].to_numpy(dtype=object)
+        codes = np.array([codes_of.setdefault(s, len(codes_of)) for s in serials], dtype=np.int64)
+        scored_drives.update(codes.tolist())
+        p = np.zeros(len(state)) if model is None else np.nan_to_num(model.predict_proba(state, H), nan=0.0)
+        history = pd.concat([f for _, f in window], ignore_index=True)
+        flags = evaluate(ruleset, history, now=moment.to_pydatetime())
+        flags = flags[flags["serial"].isin(serials)]
+        position = pd.Index(serials).get_indexer(flags["serial"])
+        worst = np.full(len(state), len(SEVERITIES))
+        np.minimum.at(worst, position, flags["severity"].map(severity_rank).to_numpy(dtype=np.int64))
+        weight = np.array([SEVERITY_WEIGHT[SEVERITIES[w]] if w < len(SEVERITIES) else 0.0 for w in worst])
+        score = 1 - (1 - weight) * (1 - p)
+
+        # which failure (if any) lies within H days after this night, per scored drive
+        moment_ns = moment.value
+        upcoming = (fail_ns > moment_ns) & (fail_ns <= moment_ns + int(H * _NS_PER_DAY))
+        positive_failure = np.full(len(state), -1)
+        if upcoming.any():
+            where = pd.Index(serials).get_indexer(fail_serial[upcoming])
+            hit = where >= 0
+            positive_failure[where[hit]] = np.flatnonzero(upcoming)[hit]
+        positive = positive_failure >= 0
+        negative = ~positive & (moment_ns + int(H * _NS_PER_DAY) <= data_end.value)
+
+        methods[SELF_ASSESSMENT_METHOD].update(state["self_assessment"].to_numpy() > 0, positive_failure,
+                                               negative, codes, moment_ns)
+        for s in SEVERITIES:
+            methods[f"severity:{s}"].update(worst <= severity_rank[s], positive_failure, negative, codes, moment_ns)
+        fired_by_rule = flags.groupby("rule_id")
+        for rule in rules:
+            flagged = np.zeros(len(state), dtype=bool)
+            if rule.id in fired_by_rule.groups:
+                flagged[pd.Index(serials).get_indexer(fired_by_rule.get_group(rule.id)["serial"])] = True
+            methods[f"rule:{rule.id}"].update(flagged, positive_failure, negative, codes, moment_ns)
+        if positive.any():
+            np.maximum.at(pos_max, positive_failure[positive], score[positive])
+            pos_nights.append((positive_failure[positive], moment_ns, score[positive]))
+        for code, value in zip(codes[negative].tolist(), score[negative].tolist()):
+            if value > neg_max.get(code, -1.0):
+                neg_max[code] = value
+
+        if forecast_origin:
+            forecasts.extend(_forecast_rows(day, state, model.predict_proba(state, H), positive_failure >= 0,
+                                            cohort_labels(state, model.by).to_numpy()))
+    if progress:
+        progress(len(nights), len(nights))
+
+    denominator = np.flatnonzero(in_denominator)
+    n_scored = len(scored_drives)
+    rows = [_method_row(name, m, denominator, fail_ns, n_scored) for name, m in methods.items()]
+    negative_scores = np.array(list(neg_max.values()))
+    curve, point = _curve(pos_max[denominator], negative_scores, n_scored, max_false_alarm)
+    combined = _Method()
+    threshold = point["score_threshold"]
+    for failures, moment_ns, scores in pos_nights:
+        for failure in failures[scores >= threshold]:
+            combined.first_caught.setdefault(int(failure), moment_ns)
+    combined.false_alarm = {c for c, v in neg_max.items() if v >= threshold}
+    rows.insert(0, _method_row(COMBINED_METHOD, combined, denominator, fail_ns, n_scored))
+    if not refits:
+        notes.append("the model could not be fitted on any scored night: the combined score is the rules' alone")
+    return BacktestResult(
+        horizon_days=H, first_night=first, last_night=last, training_days=training_days, refit_days=refit_days,
+        max_false_alarm=max_false_alarm, methods=pd.DataFrame(rows, columns=list(METHOD_COLUMNS)),
+        operating_point=point, curve=curve, forecasts=pd.DataFrame(forecasts), refits=refits, notes=notes)
+
+
+def _ns(stamps: pd.Series) -> np.ndarray:
+    return pd.to_datetime(stamps, utc=True).dt.tz_convert(None).to_numpy("datetime64[ns]").view(np.int64)
+
+
+def _method_row(name: str, method: _Method, denominator: np.ndarray, fail_ns: np.ndarray, scored: int) -> dict:
+    caught = [i for i in denominator if i in method.first_caught]
+    leads = [(fail_ns[i] - method.first_caught[i]) / _NS_PER_DAY for i in caught]
+    failures = len(denominator)
+    return {"method": name, "failures": failures, "caught": len(caught),
+            "recall": len(caught) / failures if failures else float("nan"),
+            "false_alarm_drives": len(method.false_alarm), "scored_drives": scored,
+            "false_alarm_rate": len(method.false_alarm) / scored if scored else float("nan"),
+            "lead_days_median": float(np.median(leads)) if leads else None}
+
+
+def _curve(positive_max: np.ndarray, negative_max: np.ndarray, scored: int,
+           max_false_alarm: float) -> tuple[pd.DataFrame, dict]:
+    """Recall and false-alarm rate at every distinct score threshold; the operating point is the
+    lowest threshold (highest recall) whose false-alarm rate is within ``max_false_alarm``."""
+    candidates = np.unique(np.concatenate([positive_max[positive_max >= 0], negative_max, [np.inf]]))
+    pos = np.sort(positive_max)
+    neg = np.sort(negative_max)
+    recall = (len(pos) - np.searchsorted(pos, candidates, side="left")) / max(len(pos), 1)
+    false_alarm = (len(neg) - np.searchsorted(neg, candidates, side="left")) / max(scored, 1)
+    allowed = np.flatnonzero(false_alarm <= max_false_alarm)
+    best = allowed[0]  # candidates ascend: the first allowed threshold has the highest recall
+    point = {"max_false_alarm": max_false_alarm, "score_threshold": float(candidates[best]),
+             "recall": float(recall[best]), "false_alarm_rate": float(false_alarm[best])}
+    keep = np.unique(np.concatenate([np.linspace(0, len(candidates) - 1, min(CURVE_POINTS, len(candidates)))
+                                     .round().astype(int), [best]]))
+    finite = np.isfinite(candidates[keep])
+    curve = pd.DataFrame({"score_threshold": candidates[keep][finite], "recall": recall[keep][finite],
+                          "false_alarm_rate": false_alarm[keep][finite]})
+    return curve, point
+
+
+def _forecast_rows(day: pd.Timestamp, state: pd.DataFrame, p: np.ndarray, failed: np.ndarray,
+                   cohort: np.ndarray) -> list[dict]:
+    p = np.nan_to_num(p, nan=0.0)
+    rows = []
+    groups = [("fleet", "fleet", np.ones(len(state), dtype=bool))]
+    groups += [("cohort", str(c), cohort == c) for c in sorted(pd.unique(cohort))]
+    for scope, name, members in groups:
+        pmf = poisson_binomial_pmf(p[members])
+        low, high = pmf_quantile(pmf, INTERVAL[0]), pmf_quantile(pmf, INTERVAL[1])
+        observed = int(failed[members].sum())
+        rows.append({"origin": f"{day:%Y-%m-%d}", "scope": scope, "name": name, "drives": int(members.sum()),
+                     "expected": float(p[members].sum()), "interval_low": low, "interval_high": high,
+                     "observed": observed, "inside": bool(low <= observed <= high)})
+    return rows
+
+
+__all__ = ["BacktestError", "BacktestResult", "METHOD_COLUMNS", "backtest_store"]
