@@ -513,13 +513,23 @@ class LandmarkModel:
         varies = values.max(axis=0) > values.min(axis=0)
         features = [f for f, v in zip(LANDMARK_FEATURES, varies) if v]
         design = self._design(cohorts, features)
-        X = self._matrix(states, design)
+        # Rows with the same design (cohort, age band, covariates: most healthy drives) add their
+        # failures and days: the likelihood is a sum over rows, so the fit is the same on a
+        # fraction of the rows (and memory does not grow with drives x landmarks).
+        keys = pd.DataFrame({"cohort": pd.Index(cohorts).get_indexer(cohort_labels(states, self.by)),
+                             "band": age_band_index(states["age_hours"].to_numpy(dtype=float))})
+        for name in features:
+            keys[name] = states[name].to_numpy()
+        group = keys.groupby(list(keys.columns), sort=False).ngroup().to_numpy()
+        first = np.unique(group, return_index=True)[1]
+        events = np.bincount(group, weights=failed.astype(float))
+        exposure = np.bincount(group, weights=outcomes["exposure_days"].to_numpy(dtype=float))
+        X = self._matrix(states.iloc[first], design)
         # Windows of H days started every ``step_days`` overlap: each drive-day sits in about
         # H / step rows. Weighting rows by step / H counts it once, so the penalties weigh
         # against one history's worth of evidence, not H / step copies of it.
         weight = min(1.0, self.step_days / float(self.horizon_days))
-        theta, covariance, n_iter = penalised_poisson(X, failed, outcomes["exposure_days"].to_numpy(), design.penalty,
-                                                      weight=weight)
+        theta, covariance, n_iter = penalised_poisson(X, events, exposure, design.penalty, weight=weight)
         self.design_ = design
         self.coef_ = pd.Series(theta, index=design.names, name="coef")
         self.covariance_ = covariance
