@@ -95,6 +95,14 @@ REMOVAL_SLACK = pd.Timedelta(hours=24)
 _NS_PER_DAY = 86_400_000_000_000
 
 
+def utc_times(values) -> pd.Series:
+    """A column of times as tz-aware UTC; a column that already is one is only converted (the
+    general parser looks at every value, which the nightly replay cannot afford)."""
+    if isinstance(getattr(values, "dtype", None), pd.DatetimeTZDtype):
+        return values.dt.tz_convert("UTC")
+    return pd.to_datetime(values, utc=True)
+
+
 def utc(moment) -> pd.Timestamp:
     stamp = pd.Timestamp(moment)
     return stamp.tz_localize("UTC") if stamp.tzinfo is None else stamp.tz_convert("UTC")
@@ -125,7 +133,7 @@ class StateTracker:
         if chunk is None or chunk.empty:
             return
         chunk = chunk.loc[:, [c for c in STATE_SOURCES if c in chunk.columns]]
-        chunk = chunk.assign(taken_at=pd.to_datetime(chunk["taken_at"], utc=True))
+        chunk = chunk.assign(taken_at=utc_times(chunk["taken_at"]))
         last = _last_per_serial(chunk)
         if self.latest is None:
             self.latest = last.reset_index(drop=True)
@@ -168,7 +176,7 @@ def states_from_history(history: pd.DataFrame, moment, removals: pd.DataFrame | 
     ``GROWTH_DAYS`` of them for the growth features): the same definition as the landmark
     states of ``StateTracker``. ``active_days=None`` keeps every drive in ``history``."""
     moment = utc(moment)
-    taken = pd.to_datetime(history["taken_at"], utc=True)
+    taken = utc_times(history["taken_at"])
     history = history[(taken <= moment).to_numpy()]
     taken = taken[taken <= moment]
     recent = history if active_days is None else history[(taken > moment - pd.Timedelta(days=active_days)).to_numpy()]
@@ -213,7 +221,7 @@ def state_features(latest: pd.DataFrame, moment: pd.Timestamp, base: pd.DataFram
     if latest.empty:
         return _empty_state()
     poh = pd.to_numeric(latest["power_on_hours"], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
-    since = (moment - pd.to_datetime(latest["taken_at"], utc=True)).dt.total_seconds().to_numpy() / 3600
+    since = (moment - utc_times(latest["taken_at"])).dt.total_seconds().to_numpy() / 3600
     out = latest[["serial", "taken_at", *[c for c in (*COHORT_COLUMNS, *PLACE_COLUMNS) if c in latest.columns]]].copy()
     for column in (*COHORT_COLUMNS, *PLACE_COLUMNS):
         if column not in out:
@@ -342,12 +350,12 @@ def window_outcomes(states: pd.DataFrame, removals: pd.DataFrame, horizon_days: 
     """
     data_end = utc(data_end)
     n = len(states)
-    landmark_ns = pd.to_datetime(states["landmark"], utc=True).dt.tz_convert(None).to_numpy("datetime64[ns]").view(np.int64)
+    landmark_ns = utc_times(states["landmark"]).dt.tz_convert(None).to_numpy("datetime64[ns]").view(np.int64)
     end_ns = np.minimum(landmark_ns + int(horizon_days * _NS_PER_DAY), data_end.value)
     failed = np.zeros(n, dtype=bool)
     if removals is not None and len(removals):
         rem = removals[removals["removed_at"] < data_end]
-        rem = rem.assign(removed_ns=pd.to_datetime(rem["removed_at"], utc=True).dt.tz_convert(None)
+        rem = rem.assign(removed_ns=utc_times(rem["removed_at"]).dt.tz_convert(None)
                          .to_numpy("datetime64[ns]").view(np.int64))
         rows = pd.DataFrame({"row": np.arange(n), "serial": states["serial"].to_numpy(), "landmark_ns": landmark_ns})
         merged = rows.merge(rem[["serial", "removed_ns", "reason"]], on="serial", how="inner")
