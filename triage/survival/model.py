@@ -96,7 +96,7 @@ class FleetRiskModel:
 
     def __init__(self, horizon_days: float = 30, by: Sequence[str] = ("model",), count_proactive: bool = False,
                  holdout: bool = True, age_sd: float = 0.5, cohort_sd: float = 1.0, shape_sd: float = 0.5,
-                 ridge: float = 1.0):
+                 ridge: float = 0.1):
         self.horizon_days = horizon_days
         self.by = by
         self.count_proactive = count_proactive
