@@ -32,16 +32,17 @@ def read_removals(store) -> pd.DataFrame:
     return store.read("removals", columns=list(REMOVAL_COLUMNS))
 
 
-def load_observations(store, by: Sequence[str] = ("model",), count_proactive: bool = True,
+def load_observations(store, by: Sequence[str] = ("model",), count_proactive: bool = False,
                       progress: Callable[[int, int], None] | None = None) -> Observations:
     """The observation table of a store (reads only the columns the survival layer uses)."""
     store = _store(store)
     _check_not_empty(store)
-    scan = scan_store(store, progress=progress)
-    return observations(scan, read_removals(store), by, count_proactive)
+    removals = read_removals(store)
+    scan = scan_store(store, progress=progress, removals=removals)
+    return observations(scan, removals, by, count_proactive)
 
 
-def cohorts_of_store(store, by: Sequence[str] = ("model",), count_proactive: bool = True,
+def cohorts_of_store(store, by: Sequence[str] = ("model",), count_proactive: bool = False,
                      mttf_hours: float | None = None,
                      progress: Callable[[int, int], None] | None = None) -> tuple[pd.DataFrame, Observations]:
     """(cohort table, observations) for ``triage cohorts``."""
@@ -49,7 +50,7 @@ def cohorts_of_store(store, by: Sequence[str] = ("model",), count_proactive: boo
     return cohort_table(obs, mttf_hours=mttf_hours), obs
 
 
-def survival_of_store(store, cohort: str, by: Sequence[str] = ("model",), count_proactive: bool = True,
+def survival_of_store(store, cohort: str, by: Sequence[str] = ("model",), count_proactive: bool = False,
                       mttf_hours: float | None = None,
                       progress: Callable[[int, int], None] | None = None) -> tuple[SurvivalReport, Observations]:
     """(survival report of one cohort, observations) for ``triage survival``."""
@@ -67,7 +68,8 @@ def fit_store(store, horizon_days: float = 30, by: Sequence[str] = ("model",), c
     model._validated()
     if say:
         say("reading snapshots")
-    scan = scan_store(store, progress=progress)
-    model.fit_history(scan, store_reader(store), read_removals(store), progress=say)
+    removals = read_removals(store)
+    scan = scan_store(store, progress=progress, removals=removals)
+    model.fit_history(scan, store_reader(store), removals, progress=say)
     path = model.save(store.models_dir)
     return model, path
