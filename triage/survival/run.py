@@ -1,4 +1,4 @@
-"""The store-level library functions behind ``triage fit``, ``triage cohorts`` and ``triage survival``."""
+"""The store-level library functions behind ``triage fit``, ``cohorts``, ``survival`` and ``compare``."""
 
 from __future__ import annotations
 
@@ -8,6 +8,7 @@ from typing import Callable, Sequence
 import pandas as pd
 
 from triage.survival.cohorts import SurvivalReport, cohort_table, survival_report
+from triage.survival.compare import Comparison, compare_cohorts, versus_fleet
 from triage.survival.landmark import store_reader
 from triage.survival.model import FleetRiskModel
 from triage.survival.observations import REMOVAL_COLUMNS, Observations, observations, scan_store
@@ -43,11 +44,22 @@ def load_observations(store, by: Sequence[str] = ("model",), count_proactive: bo
 
 
 def cohorts_of_store(store, by: Sequence[str] = ("model",), count_proactive: bool = False,
-                     mttf_hours: float | None = None,
+                     mttf_hours: float | None = None, vs_fleet: bool = False,
                      progress: Callable[[int, int], None] | None = None) -> tuple[pd.DataFrame, Observations]:
-    """(cohort table, observations) for ``triage cohorts``."""
+    """(cohort table, observations) for ``triage cohorts``; ``vs_fleet`` adds each cohort's rate
+    ratio against the rest of the fleet (``compare.versus_fleet``)."""
     obs = load_observations(store, by, count_proactive, progress)
-    return cohort_table(obs, mttf_hours=mttf_hours), obs
+    table = cohort_table(obs, mttf_hours=mttf_hours)
+    if vs_fleet:
+        table = table.merge(versus_fleet(obs), on="cohort", how="left")
+    return table, obs
+
+
+def compare_of_store(store, a: str, b: str, by: Sequence[str] = ("model",), count_proactive: bool = False,
+                     progress: Callable[[int, int], None] | None = None) -> tuple[Comparison, Observations]:
+    """(comparison of cohort a with cohort b, observations) for ``triage compare``."""
+    obs = load_observations(store, by, count_proactive, progress)
+    return compare_cohorts(obs, a, b), obs
 
 
 def survival_of_store(store, cohort: str, by: Sequence[str] = ("model",), count_proactive: bool = False,
