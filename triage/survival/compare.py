@@ -98,10 +98,13 @@ class Comparison:
 
 def age_adjusted_hazard_ratio(entry_hours, exit_hours, event, in_a, alpha: float = 0.05) -> tuple[float, float, float]:
     """exp(beta) and its Wald range from a Cox model with one covariate, 1 for cohort A."""
-    cox = StratifiedCox(penalizer=0.0, ties="efron").fit(entry_hours, exit_hours, event,
-                                                         np.asarray(in_a, dtype=float)[:, None])
+    with np.errstate(invalid="ignore"):  # a flat likelihood: negative variance, caught below
+        cox = StratifiedCox(penalizer=0.0, ties="efron").fit(entry_hours, exit_hours, event,
+                                                             np.asarray(in_a, dtype=float)[:, None])
     z = norm.ppf(1 - alpha / 2)
     coef, se = float(cox.coef_[0]), float(cox.se_[0])
+    if not (math.isfinite(coef) and math.isfinite(se)):
+        raise CoxFitError("the two cohorts share too few ages at which either had a failure")
     return math.exp(coef), math.exp(coef - z * se), math.exp(coef + z * se)
 
 
