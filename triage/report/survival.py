@@ -135,8 +135,10 @@ def cohort_grid(table: pd.DataFrame, width: int) -> Table:
         if datasheet:
             failed += f"\ndatasheet {_num(row['datasheet_afr'], '.2f')}"
         replaced = f"{row['replacements']}\n{_num(row['arr'], '.2f')}\n{_range(row, 'arr_low', 'arr_high')}"
-        phase = (f"{row['phase']}\nshape {_num(row['shape'], '.2f')} ({_num(row['shape_low'], '.2f')}-"
-                 f"{_num(row['shape_high'], '.2f')}), scale {_years(row['scale'])} y")
+        phase = row["phase"]
+        if row["shape_low"] is not None:
+            phase += (f"\nshape {_num(row['shape'], '.2f')} ({_num(row['shape_low'], '.2f')}-"
+                      f"{_num(row['shape_high'], '.2f')}), scale {_years(row['scale'])} y")
         if vs_fleet:
             phase += f"\nvs rest of fleet {_vs_fleet(row)}"
         notes = _cohort_notes(row)
