@@ -110,8 +110,9 @@ MODELS: tuple[DriveModel, ...] = (
     DriveModel(
         "QH-HD8T-A", "ata", "hdd", 8000, 512, 7200,
         firmwares=("QA02", "QA03", "QA05"), firmware_weights=(0.35, 0.35, 0.30),
-        # QA03 is the bad firmware of the story: 3.5 times the hazard of its siblings.
-        firmware_hazard_ratios=(1.0, 3.5, 1.0),
+        # QA03 is the bad firmware of the story: 6 times the hazard of its siblings, enough for
+        # 'triage compare' to tell it from QA02 in the demo window (benchmarks/demo_story.py)
+        firmware_hazard_ratios=(1.0, 6.0, 1.0),
         weibull_shape=1.0, weibull_scale_hours=_scale_for_afr(0.04),
         entry_age_years=(0.5, 4.0), new_fraction=0.05, host_weight=0.30,
         serial_prefix="QHA", serial_style="digits", serial_length=8, has_wwn=True,
@@ -121,10 +122,11 @@ MODELS: tuple[DriveModel, ...] = (
         "Tallow 14T", "ata", "hdd", 14000, 4096, 7200,
         firmwares=("TL104", "TL107"), firmware_weights=(0.6, 0.4),
         firmware_hazard_ratios=(1.0, 1.0),
-        # infant mortality: cumulative hazard (8766 / eta) ** 0.45 = 0.17 over the first year,
-        # strong enough that the demo window's failures show a shape range below 1 (early-life)
-        weibull_shape=0.45, weibull_scale_hours=449_700.0,
-        entry_age_years=(0.05, 1.5), new_fraction=0.45, host_weight=0.25,
+        # a bad batch with strong infant mortality: cumulative hazard (8766 / eta) ** 0.45 = 0.25
+        # over the first year, most drives young, so the demo window's failures show a shape
+        # range below 1 (early-life; benchmarks/demo_story.py)
+        weibull_shape=0.45, weibull_scale_hours=190_900.0,
+        entry_age_years=(0.05, 1.5), new_fraction=0.6, host_weight=0.25,
         serial_prefix="TLW", serial_style="base36", serial_length=7, has_wwn=True,
         temp_offset_c=16.0, spare_pool=4096, smart_attributes=HDD_ATTRIBUTES,
     ),

@@ -316,8 +316,12 @@ def verdict(c) -> str:
     what = "fails" if c.events == "failures" else "is replaced"
     if r.failures_a + r.failures_b == 0:
         return f"Neither cohort has any {c.events} yet: no comparison possible."
-    line = (f"{c.a} {what} {_times(r.rate_ratio)} as often as {c.b} "
-            f"({_times(r.rate_ratio_low)[:-1]}-{_times(r.rate_ratio_high)}), p = {_p_value(r.p_value)}")
+    if math.isinf(r.rate_ratio):  # B has none: only a lower limit says anything
+        line = (f"{c.a} had {r.failures_a} {c.events}, {c.b} none: {c.a} {what} at least "
+                f"{_times(r.rate_ratio_low)} as often (95 % lower limit), p = {_p_value(r.p_value)}")
+    else:
+        line = (f"{c.a} {what} {_times(r.rate_ratio)} as often as {c.b} "
+                f"({_times(r.rate_ratio_low)[:-1]}-{_times(r.rate_ratio_high)}), p = {_p_value(r.p_value)}")
     if math.isfinite(c.hazard_ratio):
         line += (f"; adjusted for age {_times(c.hazard_ratio)} ({_times(c.hazard_ratio_low)[:-1]}-"
                  f"{_times(c.hazard_ratio_high)})")
