@@ -69,10 +69,11 @@ def test_cohorts_table_names_every_cohort(store_root):
 def test_cohorts_lead_with_the_interval_and_the_phase_then_exposure_and_counts(store_root):
     result = run("cohorts", "--format", "csv", "--store", str(store_root))
     header = result.stdout.splitlines()[0].split(",")
-    assert header[:5] == ["cohort", "afr", "afr_low", "afr_high", "phase"]
+    assert header[:8] == ["cohort", "afr", "afr_low", "afr_high", "arr", "arr_low", "arr_high", "phase"]
     assert header.index("drives") > header.index("shape_high")
     heads = next(line for line in run("cohorts", "--store", str(store_root)).stdout.splitlines() if "AFR %/yr" in line)
-    assert heads.index("AFR %/yr") < heads.index("phase") < heads.index("drives") < heads.index("failures")
+    assert (heads.index("AFR %/yr") < heads.index("ARR %/yr") < heads.index("phase") < heads.index("drives")
+            < heads.index("failed"))
 
 
 def test_the_old_capacity_cohort_key_names_the_new_one(store_root):
