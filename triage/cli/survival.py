@@ -145,10 +145,10 @@ class CompareFormat(str, Enum):
     json = "json"
 
 
-@app.command(epilog="Example: triage compare 'QH-HD8T-A / QF12' 'QH-HD8T-A / QF14' --by model,firmware")
+@app.command(epilog="Example: triage compare 'QH-HD8T-A / QA03' 'QH-HD8T-A / QA02' --by model,firmware")
 def compare(
-    a: str = typer.Argument(..., help="Cohort A, as 'triage cohorts' prints it (same --by)."),
-    b: str = typer.Argument(..., help="Cohort B, the one A is measured against."),
+    a: str = typer.Argument(..., metavar="A", help="Cohort A, as 'triage cohorts' prints it (same --by)."),
+    b: str = typer.Argument(..., metavar="B", help="Cohort B, the one A is measured against."),
     by: str = ByOption,
     fmt: CompareFormat = typer.Option(CompareFormat.table, "--format", help="Output format."),
     events: Events = EventsOption,

@@ -109,7 +109,7 @@ def undetermined_note(shape_low: float, shape_high: float, failures: int, younge
         why.append(f"only {failures} failures")
     if oldest_exit_hours < NARROW_AGE_RATIO * max(youngest_entry_hours, 1.0):
         why.append(f"ages watched only {years(youngest_entry_hours):.1f}-{years(oldest_exit_hours):.1f} years")
-    reason = " and ".join(why) or "failures too spread out to say"
+    reason = " and ".join(why) or f"{failures} failures are not yet enough to tell"
     return (f"shape {shape_low:.2f}-{shape_high:.2f} spans more than random ({RANDOM_BAND[0]:.2f}-"
             f"{RANDOM_BAND[1]:.1f}): {reason}")
 
