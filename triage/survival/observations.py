@@ -14,12 +14,17 @@ changed) and merged into what was kept so far, so a 9-million-row table never ha
 memory whole:
 
     scan_frame / scan_store  ->  Scan (reduced rows + data-quality findings)
-    observations(scan, removals, ...)  ->  Observations (per-drive table, episodes, exclusions)
+    observations(scan, removals, ...)  ->  Observations (drive-period table, episodes, exclusions)
 
-Exit age of a removed drive: the power-on hours of its last snapshot plus the wall-clock hours
-from that snapshot to the removal -- fleet drives run around the clock. A removal stamped up to
-``REMOVAL_TOLERANCE`` before the drive's last snapshot (a log written at the start of the day)
-is taken to happen at that last snapshot.
+A drive's history is cut into periods: at each removal it came back from (the removal keeps
+its event; the drive re-enters at its age when seen again) and at each change of a ``by`` key
+such as the firmware (exposure before the first capture showing the new value counts for the
+old one). Most drives have one period; ``docs/survival.md`` section 1 has the rules.
+
+Exit age of a period ended by a removal: the power-on hours of its last snapshot plus the
+wall-clock hours from that snapshot to the removal -- fleet drives run around the clock. A
+removal stamped up to ``REMOVAL_TOLERANCE`` before the period's last snapshot (a log written at
+the start of the day) is taken to happen at that last snapshot.
 """
 
 from __future__ import annotations
