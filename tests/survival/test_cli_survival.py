@@ -69,10 +69,11 @@ def test_cohorts_table_names_every_cohort(store_root):
 def test_cohorts_lead_with_the_interval_and_the_phase_then_exposure_and_counts(store_root):
     result = run("cohorts", "--format", "csv", "--store", str(store_root))
     header = result.stdout.splitlines()[0].split(",")
-    assert header[:5] == ["cohort", "afr", "afr_low", "afr_high", "phase"]
+    assert header[:8] == ["cohort", "afr", "afr_low", "afr_high", "arr", "arr_low", "arr_high", "phase"]
     assert header.index("drives") > header.index("shape_high")
     heads = next(line for line in run("cohorts", "--store", str(store_root)).stdout.splitlines() if "AFR %/yr" in line)
-    assert heads.index("AFR %/yr") < heads.index("phase") < heads.index("drives") < heads.index("failures")
+    assert (heads.index("AFR %/yr") < heads.index("ARR %/yr") < heads.index("phase") < heads.index("drives")
+            < heads.index("failed"))
 
 
 def test_the_old_capacity_cohort_key_names_the_new_one(store_root):
@@ -128,3 +129,55 @@ def test_empty_store_is_a_clear_failure(tmp_path):
         result = run(*command, "--store", str(tmp_path))
         assert result.exit_code == Exit.FAILURE
         assert "no snapshots stored" in result.output
+
+
+def test_cohorts_show_failures_and_replacements_with_both_rates(store_root):
+    rows = json.loads(run("cohorts", "--format", "json", "--store", str(store_root)).stdout)
+    for row in rows:
+        assert row["replacements"] >= row["failures"] and row["arr"] >= row["afr"]
+        assert row["arr_low"] <= row["arr"] <= row["arr_high"]
+    assert sum(row["replacements"] > row["failures"] for row in rows) >= 1  # fleetsim pulls 20 % early
+
+
+def test_cohorts_vs_fleet_adds_each_cohorts_rate_ratio(store_root):
+    rows = json.loads(run("cohorts", "--vs-fleet", "--format", "json", "--store", str(store_root)).stdout)
+    for row in rows:
+        assert row["vs_fleet_low"] <= row["vs_fleet"] <= row["vs_fleet_high"] and 0 <= row["vs_fleet_p"] <= 1
+
+
+def test_events_replacements_count_proactive_pulls_in_the_curves(store_root):
+    failures = json.loads(run("survival", "Tallow 14T", "--format", "json", "--store", str(store_root)).stdout)
+    replaced = json.loads(run("survival", "Tallow 14T", "--format", "json", "--events", "replacements",
+                              "--store", str(store_root)).stdout)
+    assert failures["events"] == "failures" and replaced["events"] == "replacements"
+    assert sum(b["failures"] for b in replaced["age_bands"]) == replaced["replacements"]
+    assert replaced["replacements"] > failures["failures"]
+
+
+def test_compare_json_has_the_contract_keys(store_root):
+    result = run("compare", "Tallow 14T", "QH-HD8T-A", "--format", "json", "--store", str(store_root))
+    assert result.exit_code == Exit.OK, result.output
+    record = json.loads(result.stdout)
+    assert {"rate_ratio", "rate_ratio_low", "rate_ratio_high", "p_value", "hazard_ratio", "hazard_ratio_low",
+            "hazard_ratio_high"} <= set(record)
+    assert {"failures", "drive_days"} <= set(record["a_side"]) and {"failures", "drive_days"} <= set(record["b_side"])
+    assert record["rate_ratio_low"] <= record["rate_ratio"] <= record["rate_ratio_high"]
+
+
+def test_compare_table_starts_with_a_plain_words_verdict(store_root):
+    result = run("compare", "Tallow 14T", "QH-HD8T-A", "--store", str(store_root))
+    assert result.exit_code == Exit.OK, result.output
+    first = result.stdout.splitlines()[0]
+    assert first.startswith("Tallow 14T fails ") and "as often as QH-HD8T-A" in first and "p = " in first
+
+
+def test_compare_of_an_unknown_cohort_is_a_usage_error(store_root):
+    result = run("compare", "Tallow 14T", "Corvid NV1920", "--store", str(store_root))
+    assert result.exit_code == Exit.USAGE and "no cohort 'Corvid NV1920'" in result.output
+
+
+def test_plot_into_a_missing_folder_is_refused_and_creates_nothing(store_root, tmp_path):
+    target = tmp_path / "no-such-folder" / "tallow.png"
+    result = run("survival", "Tallow 14T", "--plot", str(target), "--store", str(store_root))
+    assert result.exit_code == Exit.USAGE and "does not exist" in result.output
+    assert not target.parent.exists()

@@ -36,7 +36,7 @@ def removal(serial, when, reason):
 
 def build(snapshots, removals=None, **kwargs):
     removals = removals if removals is not None else removal("none", T0, "retired").iloc[:0]
-    return observations(scan_frame(snapshots), removals, **kwargs)
+    return observations(scan_frame(snapshots, removals=removals), removals, **kwargs)
 
 
 def test_a_drive_enters_at_its_first_power_on_hours_and_leaves_at_its_last():
@@ -57,10 +57,21 @@ def test_a_failed_drive_exits_at_its_removal_time_counted_in_power_on_hours():
 
 
 @pytest.mark.parametrize("count_proactive, expected", [(True, True), (False, False)])
-def test_proactive_removal_counts_as_failure_unless_switched_off(count_proactive, expected):
+def test_a_proactive_pull_is_censored_unless_replacements_are_the_events(count_proactive, expected):
     snaps = nightly("QHA1", 5_000, nights=5)
     obs = build(snaps, removal("QHA1", "2026-03-05T14:00:00Z", "proactive"), count_proactive=count_proactive)
-    assert bool(obs.drives.iloc[0]["event"]) is expected
+    drive = obs.drives.iloc[0]
+    assert bool(drive["event"]) is expected
+    assert drive["replacement"] and not drive["failure"]
+
+
+def test_by_default_only_a_failed_removal_is_an_event():
+    snaps = pd.concat([nightly("QHA1", 5_000, nights=5), nightly("QHA2", 5_000, nights=5)])
+    removals = pd.concat([removal("QHA1", "2026-03-05T14:00:00Z", "failed"),
+                          removal("QHA2", "2026-03-05T14:00:00Z", "proactive")])
+    obs = build(snaps, removals)
+    assert obs.events == "failures"
+    assert obs.drives.set_index("serial")["event"].to_dict() == {"QHA1": True, "QHA2": False}
 
 
 def test_retired_drive_is_censored():
@@ -98,10 +109,90 @@ def test_small_clock_skew_between_captures_is_tolerated():
     assert build(snaps).exclusions.empty
 
 
-def test_snapshots_after_the_removal_exclude_the_drive():
+def test_a_drive_seen_again_after_a_failure_keeps_the_failure_and_re_enters_at_its_age_then():
+    before = nightly("QHD1", 1_000, nights=5)  # 03-01 .. 03-05 02:00, 1,000 .. 1,096 h
+    back = nightly("QHD1", 1_120, nights=5)  # back from repair on 03-11 at 1,120 h
+    back["taken_at"] = back["taken_at"] + pd.Timedelta(days=10)
+    obs = build(pd.concat([before, back]), removal("QHD1", "2026-03-05T14:00:00Z", "failed"))
+    assert obs.exclusions.empty and obs.returns == 1
+    periods = obs.drives[["entry_hours", "exit_hours", "drive_days", "event", "returned"]]
+    assert periods.to_numpy().tolist() == [[1_000, 1_096 + 12, 4.5, True, False],
+                                           [1_120, 1_120 + 4 * 24, 4.0, False, True]]
+    # the gap is nobody's risk time: no episode covers (1,108, 1,120]
+    assert obs.episodes[["start_hours", "stop_hours", "event"]].to_numpy().tolist() == [
+        [1_000, 1_108, True], [1_120, 1_216, False]]
+
+
+def test_a_drive_captured_every_night_through_its_removal_re_enters_the_night_after():
+    # the log says failed on 03-03 00:00; the 03-03 02:00 capture is within the 24 h
+    # tolerance (a log written at the start of the day), the 03-04 capture is the drive back
     obs = build(nightly("QHD1", 1_000, nights=10), removal("QHD1", "2026-03-03T00:00:00Z", "failed"))
+    assert obs.drives[["entry_hours", "exit_hours", "event"]].to_numpy().tolist() == [
+        [1_000, 1_048, True], [1_072, 1_216, False]]
+
+
+def test_a_later_retired_record_does_not_erase_the_failure_and_the_pull_counts_once():
+    removals = pd.concat([removal("QHD1", "2026-03-05T14:00:00Z", "failed"),
+                          removal("QHD1", "2026-03-20T09:00:00Z", "retired")])
+    obs = build(nightly("QHD1", 1_000, nights=5), removals)
+    assert len(obs.drives) == 1
+    drive = obs.drives.iloc[0]
+    assert drive["removal_reason"] == "failed" and drive["event"] and drive["exit_hours"] == 1_096 + 12
+
+
+def test_a_drive_retired_after_coming_back_keeps_both_removals():
+    before = nightly("QHD1", 1_000, nights=5)
+    back = nightly("QHD1", 1_120, nights=5)
+    back["taken_at"] = back["taken_at"] + pd.Timedelta(days=10)
+    removals = pd.concat([removal("QHD1", "2026-03-05T14:00:00Z", "failed"),
+                          removal("QHD1", "2026-03-16T02:00:00Z", "retired")])
+    obs = build(pd.concat([before, back]), removals)
+    assert obs.drives["removal_reason"].tolist() == ["failed", "retired"]
+    assert obs.drives["failure"].tolist() == [True, False]
+    assert obs.drives["exit_hours"].tolist() == [1_108, 1_216 + 24]
+
+
+def test_a_removal_before_the_first_snapshot_excludes_the_drive_with_the_reason():
+    obs = build(nightly("QHD1", 1_000, nights=5), removal("QHD1", "2026-02-20T00:00:00Z", "failed"))
     assert obs.drives.empty
-    assert "snapshots continue after its removal" in obs.exclusions.iloc[0]["reason"]
+    assert "comes before the drive's first snapshot" in obs.exclusions.iloc[0]["reason"]
+
+
+def firmware_update(serial="QHF1", first_hours=3_000, nights=20, update_night=10):
+    return nightly(serial, first_hours, nights=nights,
+                   firmware=["QF12"] * update_night + ["QF14"] * (nights - update_night))
+
+
+def test_a_firmware_update_splits_exposure_at_the_first_capture_showing_it():
+    obs = build(firmware_update(), removal("QHF1", "2026-03-20T14:00:00Z", "failed"), by=("model", "firmware"))
+    periods = obs.drives[["cohort", "entry_hours", "exit_hours", "drive_days", "event", "period"]]
+    assert periods.to_numpy().tolist() == [
+        ["QH-HD8T-A / QF12", 3_000, 3_240, 10.0, False, 0],
+        ["QH-HD8T-A / QF14", 3_240, 3_000 + 19 * 24 + 12, 9.5, True, 1]]
+    assert obs.episodes["cohort"].tolist() == ["QH-HD8T-A / QF12", "QH-HD8T-A / QF14"]
+    assert obs.episodes["event"].tolist() == [False, True]
+
+
+def test_without_firmware_in_by_an_update_does_not_split_the_drive():
+    obs = build(firmware_update(), removal("QHF1", "2026-03-20T14:00:00Z", "failed"), by=("model",))
+    assert obs.drives[["entry_hours", "exit_hours", "event"]].to_numpy().tolist() == [[3_000, 3_468, True]]
+
+
+def test_a_capture_missing_the_firmware_string_is_not_an_update():
+    snaps = nightly("QHF2", 3_000, nights=6)
+    snaps["firmware"] = snaps["firmware"].astype(object)
+    snaps.loc[3, "firmware"] = None
+    obs = build(snaps, by=("model", "firmware"))
+    assert obs.drives["cohort"].tolist() == ["QH-HD8T-A / QF12"]
+
+
+def test_a_firmware_update_inside_a_chunked_scan_splits_at_the_same_capture():
+    snaps = firmware_update(nights=20, update_night=12)
+    removals = removal("QHF1", "2026-03-20T14:00:00Z", "failed")
+    whole = observations(scan_frame(snaps, removals=removals), removals, by=("model", "firmware"))
+    split = observations(scan_frame(snaps, cut=T0 + pd.Timedelta(days=7), removals=removals), removals,
+                         by=("model", "firmware"))
+    pd.testing.assert_frame_equal(whole.drives, split.drives)
 
 
 def test_a_removal_logged_at_the_start_of_the_last_day_still_ends_the_drive():

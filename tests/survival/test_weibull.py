@@ -10,7 +10,8 @@ from scipy.optimize import minimize
 from scipy.stats import weibull_min
 
 from tests.survival.fleetsim import truncated_weibull
-from triage.survival.weibull import EARLY_LIFE, RANDOM, TOO_FEW, WEAR_OUT, fit_weibull, phase_of
+from triage.survival.weibull import (EARLY_LIFE, RANDOM, TOO_FEW, UNDETERMINED, WEAR_OUT, fit_weibull,
+                                    phase_of)
 
 
 def test_complete_data_fit_matches_scipy_weibull_min():
@@ -80,7 +81,22 @@ def test_phase_follows_the_shape_interval():
     # a flat likelihood on one side leaves that limit unbounded; the other side still decides
     assert phase_of(1.3, math.inf) == WEAR_OUT
     assert phase_of(0.0, 0.8) == EARLY_LIFE
-    assert phase_of(0.0, math.inf) == RANDOM
+
+
+@pytest.mark.parametrize("low, high", [(0.0, math.inf), (0.42, 1.34), (0.9, 1.6), (0.6, 1.2)])
+def test_a_range_across_1_reaching_past_the_random_band_is_undetermined(low, high):
+    assert phase_of(low, high) == UNDETERMINED
+
+
+def test_an_undetermined_phase_says_why():
+    # 200 drives watched 120 days at 4.5-7.5 years, shape 2.2: a handful of failures
+    rng = np.random.default_rng(0)
+    entry = rng.uniform(4.5, 7.5, 200) * 8766
+    failure = truncated_weibull(rng, entry, 2.2, 85_000)
+    end = entry + 120 * 24
+    fit = fit_weibull(entry, np.minimum(failure, end), failure <= end)
+    assert fit.phase == UNDETERMINED
+    assert f"only {fit.failures} failures" in fit.phase_note and "ages watched only 4.5-7.8 years" in fit.phase_note
 
 
 def test_a_cohort_with_one_failure_gets_no_shape():
@@ -124,7 +140,7 @@ def test_shape_range_is_the_likelihood_ratio_interval_of_an_independent_profile(
 
 def test_a_narrow_age_window_gives_an_honest_wide_range_not_an_error():
     # Wear-out drives (shape 2.2) bought at 4.5-7.5 years and watched for 120 days: a dozen
-    # failures say little about the shape. The range must cover the truth and 1 (so: "random").
+    # failures say little about the shape. The range must cover the truth (and 1: "undetermined").
     rng = np.random.default_rng(0)
     coverage = []
     for _ in range(60):

@@ -1,7 +1,8 @@
-"""``triage fit``, ``triage cohorts`` and ``triage survival``: failure rates and the risk model."""
+"""``triage fit``, ``cohorts``, ``survival`` and ``compare``: failure rates and the risk model."""
 
 from __future__ import annotations
 
+from enum import Enum
 from pathlib import Path
 from typing import Optional
 
@@ -13,9 +14,19 @@ from triage.exitcodes import Exit
 
 # -- survival: fit, cohorts, survival (triage/survival, triage/report/survival.py, docs/survival.md) --
 ByOption = typer.Option("model", "--by", help="Cohort keys, comma-separated, among model, firmware, bus, user_capacity_bytes.")
-ProactiveOption = typer.Option(
-    True, "--count-proactive/--proactive-censored",
-    help="Count drives pulled on a warning ('proactive') as failures (default), or as censored.")
+
+
+class Events(str, Enum):
+    """What ends a drive's life in curves, Weibull, compare and the risk model (docs/survival.md)."""
+
+    failures = "failures"  # 'failed' removals; a proactive pull is censored
+    replacements = "replacements"  # 'failed' and 'proactive' removals
+
+
+EventsOption = typer.Option(
+    Events.failures, "--events",
+    help="Events for curves, Weibull, compare and fit: failures (failed removals; proactive pulls "
+         "censored) or replacements (failed or proactive). cohorts shows AFR and ARR either way.")
 MttfOption = typer.Option(None, "--mttf", min=1.0, help="Datasheet MTTF in hours: show the AFR it implies.")
 
 
@@ -37,10 +48,11 @@ def _survival_call(function, *args, **kwargs):
         fail(str(exc), Exit.FAILURE)
 
 
-def _survival_notes(exclusions) -> None:
-    from triage.report.survival import exclusion_lines
+def _survival_notes(obs) -> None:
+    """Data-quality exclusions and drives back from repair, on stderr."""
+    from triage.report.survival import exclusion_lines, return_lines
 
-    for line in exclusion_lines(exclusions):
+    for line in [*exclusion_lines(obs.exclusions), *return_lines(obs.returns)]:
         typer.echo(line, err=True)
 
 
@@ -48,13 +60,13 @@ def _survival_notes(exclusions) -> None:
 def fit(
     horizon_days: float = typer.Option(30.0, "--horizon-days", min=1.0, help="Predict failure within this many days."),
     by: str = ByOption,
-    count_proactive: bool = ProactiveOption,
+    events: Events = EventsOption,
     fmt: str = typer.Option("table", "--format", help="table | json (summary of the fitted model)."),
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Fit the fleet risk model (AFR, Weibull, stratified Cox) and save it under <store>/models."""
     from triage.report.console import progress_bar
-    from triage.report.survival import render_fit
+    from triage.report.survival import exclusion_lines, render_fit
     from triage.survival.run import fit_store
 
     if fmt not in ("table", "json"):
@@ -62,21 +74,25 @@ def fit(
     target = open_store(store)
     with progress_bar("reading snapshots") as update:
         model, path = _survival_call(fit_store, target, horizon_days=horizon_days, by=by,
-                                     count_proactive=count_proactive,
+                                     count_proactive=events is Events.replacements,
                                      say=lambda message: typer.echo(f"fit: {message}", err=True), progress=update)
-    _survival_notes(model.exclusions_)
+    for line in exclusion_lines(model.exclusions_):
+        typer.echo(line, err=True)
     render_fit(model, path, fmt)
 
 
-@app.command(epilog="Example: triage cohorts --by model,firmware --format csv --mttf 2500000")
+@app.command(epilog="Example: triage cohorts --by model,firmware --vs-fleet --format csv --mttf 2500000")
 def cohorts(
     by: str = ByOption,
     fmt: str = typer.Option("table", "--format", help="table | csv | json"),
     mttf: Optional[float] = MttfOption,
-    count_proactive: bool = ProactiveOption,
+    vs_fleet: bool = typer.Option(False, "--vs-fleet", help="Add each cohort's failure-rate ratio against the "
+                                                            "rest of the fleet, exact 95 % range and p-value."),
+    events: Events = EventsOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
-    """One row per cohort: AFR with exact 95 % limits, life phase and Weibull shape, then drives, drive-days, failures."""
+    """One row per cohort: AFR and ARR with exact 95 % limits, life phase and Weibull shape, then drives,
+    drive-days, failures and replacements."""
     from triage.report.console import progress_bar
     from triage.report.survival import render_cohorts
     from triage.survival.run import cohorts_of_store
@@ -85,8 +101,9 @@ def cohorts(
         fail(f"--format must be table, csv or json, not {fmt!r}", Exit.USAGE)
     with progress_bar("reading snapshots") as update:
         table, obs = _survival_call(cohorts_of_store, open_store(store), by=by,
-                                    count_proactive=count_proactive, mttf_hours=mttf, progress=update)
-    _survival_notes(obs.exclusions)
+                                    count_proactive=events is Events.replacements, mttf_hours=mttf,
+                                    vs_fleet=vs_fleet, progress=update)
+    _survival_notes(obs)
     render_cohorts(table, fmt)
 
 
@@ -95,9 +112,10 @@ def survival(
     cohort: str = typer.Argument(..., help="Cohort label as 'triage cohorts' prints it (same --by)."),
     by: str = ByOption,
     fmt: str = typer.Option("table", "--format", help="table | json"),
-    plot: Optional[Path] = typer.Option(None, "--plot", help="Also draw Kaplan-Meier with band and Weibull fit (.png or .svg)."),
+    plot: Optional[Path] = typer.Option(None, "--plot", help="Also draw Kaplan-Meier with band and Weibull fit "
+                                                             "(.png or .svg, in an existing folder)."),
     mttf: Optional[float] = MttfOption,
-    count_proactive: bool = ProactiveOption,
+    events: Events = EventsOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Survival and cumulative hazard by age (delayed entry), hazard by age band, Weibull fit of one cohort."""
@@ -109,11 +127,41 @@ def survival(
         fail(f"--format must be table or json, not {fmt!r}", Exit.USAGE)
     if plot is not None and plot.suffix.lower() not in (".png", ".svg"):
         fail(f"{plot}: --plot must name a .png or .svg file", Exit.USAGE)
+    if plot is not None and not plot.absolute().parent.is_dir():
+        fail(f"{plot}: --plot folder {plot.absolute().parent} does not exist (create it first)", Exit.USAGE)
     with progress_bar("reading snapshots") as update:
         report, obs = _survival_call(survival_of_store, open_store(store), cohort, by=by,
-                                     count_proactive=count_proactive, mttf_hours=mttf, progress=update)
-    _survival_notes(obs.exclusions)
+                                     count_proactive=events is Events.replacements, mttf_hours=mttf,
+                                     progress=update)
+    _survival_notes(obs)
     render_survival(report, fmt)
     if plot is not None:
         _survival_call(plot_survival, report, plot)
         typer.echo(f"survival: plot written to {plot}", err=True)
+
+
+class CompareFormat(str, Enum):
+    table = "table"
+    json = "json"
+
+
+@app.command(epilog="Example: triage compare 'QH-HD8T-A / QA03' 'QH-HD8T-A / QA02' --by model,firmware")
+def compare(
+    a: str = typer.Argument(..., metavar="A", help="Cohort A, as 'triage cohorts' prints it (same --by)."),
+    b: str = typer.Argument(..., metavar="B", help="Cohort B, the one A is measured against."),
+    by: str = ByOption,
+    fmt: CompareFormat = typer.Option(CompareFormat.table, "--format", help="Output format."),
+    events: Events = EventsOption,
+    store: Optional[Path] = StoreOption,
+) -> None:
+    """Is cohort A worse than cohort B? Failure-rate ratio (exact 95 % range, p-value) and the hazard ratio
+    adjusted for age (Cox)."""
+    from triage.report.console import progress_bar
+    from triage.report.survival import render_compare
+    from triage.survival.run import compare_of_store
+
+    with progress_bar("reading snapshots") as update:
+        comparison, obs = _survival_call(compare_of_store, open_store(store), a, b, by=by,
+                                         count_proactive=events is Events.replacements, progress=update)
+    _survival_notes(obs)
+    render_compare(comparison, fmt.value)

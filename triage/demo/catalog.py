@@ -103,14 +103,16 @@ SITES: tuple[Site, ...] = (
 #: The shapes cover infant mortality (k < 1), random failures (k = 1) and wear-out (k > 1). The
 #: fleet is troubled on purpose so that a 1,200-drive, 120-night window holds tens of failures:
 #: rates at the ages present run from about 1 %/yr (NVMe) to about 4 %/yr (healthy 8 TB disks),
-#: with three troubled cohorts near 12-15 %/yr (the QA03 firmware, young 14 TB disks, the oldest
-#: 4 TB disks).
+#: with three troubled cohorts well above that (the QA03 firmware near 14 %/yr, young 14 TB disks,
+#: the oldest 4 TB disks) so that ``triage cohorts`` and ``triage compare`` can tell their stories
+#: apart from chance in a 120-night window.
 MODELS: tuple[DriveModel, ...] = (
     DriveModel(
         "QH-HD8T-A", "ata", "hdd", 8000, 512, 7200,
         firmwares=("QA02", "QA03", "QA05"), firmware_weights=(0.35, 0.35, 0.30),
-        # QA03 is the bad firmware of the story: 3.5 times the hazard of its siblings.
-        firmware_hazard_ratios=(1.0, 3.5, 1.0),
+        # QA03 is the bad firmware of the story: 6 times the hazard of its siblings, enough for
+        # 'triage compare' to tell it from QA02 in the demo window (benchmarks/demo_story.py)
+        firmware_hazard_ratios=(1.0, 6.0, 1.0),
         weibull_shape=1.0, weibull_scale_hours=_scale_for_afr(0.04),
         entry_age_years=(0.5, 4.0), new_fraction=0.05, host_weight=0.30,
         serial_prefix="QHA", serial_style="digits", serial_length=8, has_wwn=True,
@@ -120,9 +122,11 @@ MODELS: tuple[DriveModel, ...] = (
         "Tallow 14T", "ata", "hdd", 14000, 4096, 7200,
         firmwares=("TL104", "TL107"), firmware_weights=(0.6, 0.4),
         firmware_hazard_ratios=(1.0, 1.0),
-        # infant mortality: cumulative hazard (8766 / eta) ** 0.7 = 0.12 over the first year
-        weibull_shape=0.7, weibull_scale_hours=181_300.0,
-        entry_age_years=(0.05, 1.5), new_fraction=0.45, host_weight=0.25,
+        # a bad batch with strong infant mortality: cumulative hazard (8766 / eta) ** 0.45 = 0.25
+        # over the first year, most drives young, so the demo window's failures show a shape
+        # range below 1 (early-life; benchmarks/demo_story.py)
+        weibull_shape=0.45, weibull_scale_hours=190_900.0,
+        entry_age_years=(0.05, 1.5), new_fraction=0.6, host_weight=0.25,
         serial_prefix="TLW", serial_style="base36", serial_length=7, has_wwn=True,
         temp_offset_c=16.0, spare_pool=4096, smart_attributes=HDD_ATTRIBUTES,
     ),
@@ -130,9 +134,11 @@ MODELS: tuple[DriveModel, ...] = (
         "Marrow 4T", "ata", "hdd", 4000, 512, 5400,
         firmwares=("MW0S1", "MW0S4"), firmware_weights=(0.5, 0.5),
         firmware_hazard_ratios=(1.0, 1.0),
-        # wear-out: about 14 %/yr at six and a half years
-        weibull_shape=2.2, weibull_scale_hours=85_000.0,
-        entry_age_years=(4.5, 7.5), new_fraction=0.0, host_weight=0.15,
+        # steep wear-out: a hazard of about 5 %/yr at three years, 12 %/yr at four, 40 %/yr at six
+        # and a half; bought at 2.5 to 8 years, so the window sees a band of ages wide enough
+        # for the shape range to clear 1 (benchmarks/demo_story.py)
+        weibull_shape=3.5, weibull_scale_hours=62_000.0,
+        entry_age_years=(2.5, 8.0), new_fraction=0.0, host_weight=0.15,
         serial_prefix="MR4-", serial_style="digits", serial_length=8, has_wwn=False,
         temp_offset_c=11.0, spare_pool=1024, smart_attributes=OLD_HDD_ATTRIBUTES,
     ),

@@ -58,6 +58,10 @@ def _write_json(obj, out: TextIO) -> None:
 
 # -- triage cohorts ---------------------------------------------------------------------------
 
+#: Below this many terminal columns the cohort table folds into four columns (80-column terminals).
+WIDE_COLUMNS = 140
+
+
 def render_cohorts(table: pd.DataFrame, fmt: str, out: TextIO | None = None) -> None:
     out = out or sys.stdout
     if fmt == "json":
@@ -68,38 +72,85 @@ def render_cohorts(table: pd.DataFrame, fmt: str, out: TextIO | None = None) -> 
         for row in _records(table):
             writer.writerow(["" if v is None else v for v in row.values()])
     else:
-        _cohort_table(table)
+        _console().print(cohort_grid(table, _console().width))
 
 
-def _cohort_table(table: pd.DataFrame) -> None:
+def _range(row: dict, low: str, high: str, spec: str = ".2f") -> str:
+    return f"{_num(row[low], spec)} - {_num(row[high], spec)}"
+
+
+def _cohort_notes(row: dict) -> str:
+    notes = []
+    if row["small_sample"]:
+        notes.append("small sample")
+    if row.get("phase_note"):
+        notes.append(escape(row["phase_note"]))
+    return "; ".join(notes)
+
+
+def _vs_fleet(row: dict) -> str:
+    return (f"{_num(row['vs_fleet'], '.2f')}x ({_range(row, 'vs_fleet_low', 'vs_fleet_high')}), "
+            f"p {_p_value(row['vs_fleet_p'])}")
+
+
+def cohort_grid(table: pd.DataFrame, width: int) -> Table:
+    """The cohort table for a terminal ``width`` columns wide: one column per figure when wide,
+    four folded columns below ``WIDE_COLUMNS`` (cells break between words, never inside one)."""
     datasheet = "datasheet_afr" in table.columns
-    grid = Table(title="Failure rate and life phase by cohort", title_justify="left")
-    heads = ["cohort", "AFR %/yr", "95 % range"]
-    if datasheet:
-        heads.append("datasheet AFR")
-    heads += ["phase", "Weibull shape (95 %)", "scale (years)", "drives", "drive-years", "failures", "note"]
-    for head in heads:
-        grid.add_column(head, justify="left" if head in ("cohort", "phase", "note") else "right",
-                        overflow="fold")
-    for row in _records(table):
-        cells = [
-            escape(str(row["cohort"])),
-            _num(row["afr"], ".2f"),
-            f"{_num(row['afr_low'], '.2f')} - {_num(row['afr_high'], '.2f')}",
-        ]
+    vs_fleet = "vs_fleet" in table.columns
+    grid = Table(title="Failure and replacement rates, life phase by cohort", title_justify="left")
+    rows = _records(table)
+    if width >= WIDE_COLUMNS:
+        # the intervals and the phase lead, exposure and counts follow (as the JSON keys)
+        heads = ["cohort", "AFR %/yr", "95 % range", "ARR %/yr", "95 % range"]
         if datasheet:
-            cells.append(_num(row["datasheet_afr"], ".2f"))
-        cells += [
-            row["phase"],
-            f"{_num(row['shape'], '.2f')} ({_num(row['shape_low'], '.2f')}-{_num(row['shape_high'], '.2f')})",
-            _years(row["scale"]),
-            str(row["drives"]),
-            _num(row["drive_days"] / 365.0, ",.1f"),
-            str(row["failures"]),
-            "small sample" if row["small_sample"] else "",
-        ]
-        grid.add_row(*cells)
-    _console().print(grid)
+            heads.append("datasheet AFR")
+        if vs_fleet:
+            heads.append("vs rest of fleet")
+        heads += ["phase", "Weibull shape (95 %)", "scale (years)", "drives", "drive-years", "failed", "replaced",
+                  "note"]
+        for head in heads:
+            grid.add_column(head, justify="left" if head in ("cohort", "phase", "note") else "right",
+                            overflow="fold")
+        for row in rows:
+            cells = [escape(str(row["cohort"])), _num(row["afr"], ".2f"), _range(row, "afr_low", "afr_high"),
+                     _num(row["arr"], ".2f"), _range(row, "arr_low", "arr_high")]
+            if datasheet:
+                cells.append(_num(row["datasheet_afr"], ".2f"))
+            if vs_fleet:
+                cells.append(_vs_fleet(row))
+            cells += [row["phase"],
+                      f"{_num(row['shape'], '.2f')} ({_num(row['shape_low'], '.2f')}-{_num(row['shape_high'], '.2f')})",
+                      _years(row["scale"]), str(row["drives"]), _num(row["drive_days"] / 365.0, ",.1f"),
+                      str(row["failures"]), str(row["replacements"]), _cohort_notes(row)]
+            grid.add_row(*cells)
+        return grid
+    grid.add_column("cohort", overflow="fold", ratio=2)
+    grid.add_column("failed (AFR %/yr)", justify="right", no_wrap=True)
+    grid.add_column("replaced (ARR %/yr)", justify="right", no_wrap=True)
+    grid.add_column("phase (Weibull shape)", overflow="fold", ratio=3)
+    for row in rows:
+        who = f"{escape(str(row['cohort']))}\n{row['drives']} drives\n{_num(row['drive_days'] / 365.0, ',.1f')} drive-years"
+        failed = f"{row['failures']}\n{_num(row['afr'], '.2f')}\n{_range(row, 'afr_low', 'afr_high')}"
+        if datasheet:
+            failed += f"\ndatasheet {_num(row['datasheet_afr'], '.2f')}"
+        replaced = f"{row['replacements']}\n{_num(row['arr'], '.2f')}\n{_range(row, 'arr_low', 'arr_high')}"
+        phase = row["phase"]
+        if row["shape_low"] is not None:
+            phase += (f"\nshape {_num(row['shape'], '.2f')} ({_num(row['shape_low'], '.2f')}-"
+                      f"{_num(row['shape_high'], '.2f')}), scale {_years(row['scale'])} y")
+        if vs_fleet:
+            phase += f"\nvs rest of fleet {_vs_fleet(row)}"
+        notes = _cohort_notes(row)
+        grid.add_row(who, failed, replaced, phase + (f"\n{notes}" if notes else ""))
+    return grid
+
+
+def _p_value(p) -> str:
+    p = _plain(p)
+    if p is None:
+        return "-"
+    return "< 0.0001" if p < 0.0001 else f"{p:.2g}" if p < 0.01 else f"{p:.2f}"
 
 
 # -- triage survival --------------------------------------------------------------------------
@@ -112,13 +163,18 @@ def survival_record(report) -> dict:
         "drives": report.drives,
         "drive_days": report.drive_days,
         "failures": report.failures,
+        "replacements": report.replacements,
         "afr": report.afr,
         "afr_low": report.afr_low,
         "afr_high": report.afr_high,
+        "arr": report.arr,
+        "arr_low": report.arr_low,
+        "arr_high": report.arr_high,
+        "events": report.events,
         "small_sample": report.small_sample,
         "weibull": {"shape": w.shape, "shape_low": w.shape_low, "shape_high": w.shape_high,
                     "scale": w.scale, "scale_low": w.scale_low, "scale_high": w.scale_high,
-                    "phase": w.phase},
+                    "phase": w.phase, "phase_note": w.phase_note},
         "youngest_entry_hours": report.curves.youngest_entry_hours,
         "curve": _records(report.curves.table),
         "age_bands": _records(report.bands),
@@ -131,27 +187,32 @@ def survival_record(report) -> dict:
     return plain
 
 
-def render_survival(report, fmt: str, out: TextIO | None = None) -> None:
+def render_survival(report, fmt: str, out: TextIO | None = None, console=None) -> None:
     out = out or sys.stdout
     if fmt == "json":
         _write_json(survival_record(report), out)
         return
-    console = _console()
+    console = console or _console()
     w = report.weibull
     lines = [
         f"[bold]{escape(report.cohort)}[/bold]  ({report.drives} drives, {report.drive_days / 365:,.1f} "
-        f"drive-years, {report.failures} failures{', small sample' if report.small_sample else ''})",
-        f"AFR {_num(report.afr, '.2f')} %/yr (95 %: {_num(report.afr_low, '.2f')} - {_num(report.afr_high, '.2f')})",
+        f"drive-years, {report.failures} failed, {report.replacements} replaced"
+        f"{', small sample' if report.small_sample else ''})",
+        f"AFR {_num(report.afr, '.2f')} %/yr (95 %: {_num(report.afr_low, '.2f')} - {_num(report.afr_high, '.2f')}), "
+        f"ARR {_num(report.arr, '.2f')} %/yr (95 %: {_num(report.arr_low, '.2f')} - {_num(report.arr_high, '.2f')})",
     ]
     if report.datasheet_afr is not None:
         lines.append(f"datasheet MTTF {report.mttf_hours:,.0f} h implies AFR {report.datasheet_afr:.2f} %/yr")
     lines.append(f"Weibull shape {_num(w.shape, '.2f')} (95 %: {_num(w.shape_low, '.2f')} - "
-                 f"{_num(w.shape_high, '.2f')}), scale {_years(w.scale)} years: {w.phase}")
+                 f"{_num(w.shape_high, '.2f')}), scale {_years(w.scale)} years: {w.phase}"
+                 + (f" ({escape(w.phase_note)})" if w.phase_note else ""))
+    lines.append(f"events in the curves and the fit: {report.events}"
+                 + (" (proactive pulls censored)" if report.events == "failures" else " (failed or proactive)"))
     for line in lines:
         console.print(line)
 
     bands = Table(title="Hazard by age band (annualized)", title_justify="left")
-    for head in ("age", "drive-days", "failures", "hazard %/yr", "95 % range"):
+    for head in ("age", "drive-days", report.events, "hazard %/yr", "95 % range"):
         bands.add_column(head, justify="left" if head == "age" else "right", overflow="fold")
     for row in _records(report.bands):
         bands.add_row(row["band"], _num(row["drive_days"], ",.0f"), str(row["failures"]),
@@ -169,6 +230,7 @@ def render_survival(report, fmt: str, out: TextIO | None = None) -> None:
     if len(shown) < len(curve):
         title += f": {len(shown)} of {len(curve)} failure ages; --format json has all"
     grid = Table(title=title, title_justify="left")
+    # headers of several words, so an 80-column terminal wraps them, not the numbers
     for head in ("age (years)", "power-on hours", "survival", "95 % range", "at risk", "cum. hazard"):
         grid.add_column(head, justify="right", overflow="fold")
     for row in _records(shown):
@@ -179,10 +241,13 @@ def render_survival(report, fmt: str, out: TextIO | None = None) -> None:
 
 
 def plot_survival(report, path: Path) -> Path:
-    """Kaplan-Meier with its 95 % band and the fitted Weibull, to ``path`` (.png or .svg)."""
+    """Kaplan-Meier with its 95 % band and the fitted Weibull, to ``path`` (.png or .svg) in an
+    existing folder. A cohort without events gets a figure saying so, not an empty frame."""
     path = Path(path)
     if path.suffix.lower() not in (".png", ".svg"):
         raise ValueError(f"{path}: the plot file must end in .png or .svg")
+    if not path.absolute().parent.is_dir():
+        raise ValueError(f"{path}: folder {path.absolute().parent} does not exist")
     import matplotlib
 
     matplotlib.use("Agg")
@@ -190,6 +255,16 @@ def plot_survival(report, path: Path) -> Path:
 
     curve = report.curves.table
     fig, ax = plt.subplots(figsize=(7, 4.2))
+    title = f"{report.cohort}: {report.drives} drives, {report.failures} failed, {report.replacements} replaced"
+    if not len(curve) or int(curve["failures"].sum()) == 0:
+        ax.set_axis_off()
+        ax.text(0.5, 0.5, f"no {report.events} in {report.drive_days / 365:,.1f} drive-years:\n"
+                          "no survival curve to draw (survival stays at 1)",
+                ha="center", va="center", fontsize=12, transform=ax.transAxes)
+        ax.set_title(title)
+        fig.savefig(path)
+        plt.close(fig)
+        return path
     years = curve["age_hours"] / HOURS_PER_YEAR
     ax.fill_between(years, curve["survival_low"], curve["survival_high"], step="post", alpha=0.25,
                     color="tab:blue", label="95 % band")
@@ -201,14 +276,81 @@ def plot_survival(report, path: Path) -> Path:
                 label=f"Weibull shape {w.shape:.2f}, scale {w.scale / HOURS_PER_YEAR:.1f} y")
     ax.set_xlabel("age (power-on years)")
     ax.set_ylabel(f"survival, given alive at {report.curves.youngest_entry_hours / HOURS_PER_YEAR:.2f} years")
-    ax.set_title(f"{report.cohort}: {report.drives} drives, {report.failures} failures")
+    ax.set_title(title)
     ax.grid(alpha=0.3)
     ax.legend(loc="lower left")
     fig.tight_layout()
-    path.parent.mkdir(parents=True, exist_ok=True)
     fig.savefig(path)
     plt.close(fig)
     return path
+
+
+# -- triage compare ---------------------------------------------------------------------------
+
+def compare_record(c) -> dict:
+    r = c.rates
+    record = {
+        "a": c.a, "b": c.b, "by": list(c.by), "events": c.events,
+        "rate_ratio": r.rate_ratio, "rate_ratio_low": r.rate_ratio_low, "rate_ratio_high": r.rate_ratio_high,
+        "p_value": r.p_value,
+        "hazard_ratio": c.hazard_ratio, "hazard_ratio_low": c.hazard_ratio_low,
+        "hazard_ratio_high": c.hazard_ratio_high, "hazard_note": c.hazard_note or None,
+        "age_confounded": c.age_confounded,
+        "a_side": {"drives": c.drives_a, "failures": r.failures_a, "drive_days": r.drive_days_a,
+                   "median_age_hours": c.median_age_a_hours},
+        "b_side": {"drives": c.drives_b, "failures": r.failures_b, "drive_days": r.drive_days_b,
+                   "median_age_hours": c.median_age_b_hours},
+    }
+    return {k: {kk: _plain(vv) for kk, vv in v.items()} if isinstance(v, dict) else
+            v if isinstance(v, list) else _plain(v) for k, v in record.items()}
+
+
+def _times(value) -> str:
+    value = _plain(value)
+    return "-" if value is None else f"{value:.2g}x" if value < 10 else f"{value:.0f}x"
+
+
+def verdict(c) -> str:
+    """One plain-words line: how much more often A fails than B, and after adjusting for age."""
+    r = c.rates
+    what = "fails" if c.events == "failures" else "is replaced"
+    if r.failures_a + r.failures_b == 0:
+        return f"Neither cohort has any {c.events} yet: no comparison possible."
+    if math.isinf(r.rate_ratio):  # B has none: only a lower limit says anything
+        line = (f"{c.a} had {r.failures_a} {c.events}, {c.b} none: {c.a} {what} at least "
+                f"{_times(r.rate_ratio_low)} as often (95 % lower limit), p = {_p_value(r.p_value)}")
+    else:
+        line = (f"{c.a} {what} {_times(r.rate_ratio)} as often as {c.b} "
+                f"({_times(r.rate_ratio_low)[:-1]}-{_times(r.rate_ratio_high)}), p = {_p_value(r.p_value)}")
+    if math.isfinite(c.hazard_ratio):
+        line += (f"; adjusted for age {_times(c.hazard_ratio)} ({_times(c.hazard_ratio_low)[:-1]}-"
+                 f"{_times(c.hazard_ratio_high)})")
+    else:
+        line += f"; {c.hazard_note}"
+    return line + "."
+
+
+def render_compare(c, fmt: str, out: TextIO | None = None, console=None) -> None:
+    if fmt == "json":
+        _write_json(compare_record(c), out or sys.stdout)
+        return
+    console = console or _console()
+    r = c.rates
+    console.print(escape(verdict(c)))
+    grid = Table(title=f"{c.events} per drive-day, by {','.join(c.by)}", title_justify="left")
+    for head in ("cohort", "drives", "drive-years", c.events, "per year %", "median age (years)"):
+        grid.add_column(head, justify="left" if head == "cohort" else "right", overflow="fold")
+    for label, drives, k, days, age in ((c.a, c.drives_a, r.failures_a, r.drive_days_a, c.median_age_a_hours),
+                                        (c.b, c.drives_b, r.failures_b, r.drive_days_b, c.median_age_b_hours)):
+        rate = 100 * k / (days / 365.0) if days > 0 else math.nan
+        grid.add_row(escape(label), str(drives), _num(days / 365.0, ",.1f"), str(k), _num(rate, ".2f"), _years(age))
+    console.print(grid)
+    if c.age_confounded:
+        console.print(f"note: the two cohorts were watched at different ages (median {_years(c.median_age_a_hours)} "
+                      f"and {_years(c.median_age_b_hours)} years) and the crude ratio lies outside the age-adjusted "
+                      "range: trust the adjusted one.")
+    if r.failures_a + r.failures_b < 10:
+        console.print(f"note: only {r.failures_a + r.failures_b} {c.events} in all; the ranges are wide for a reason.")
 
 
 # -- triage fit -------------------------------------------------------------------------------
@@ -266,6 +408,14 @@ def render_fit(model, path: Path, fmt: str, out: TextIO | None = None) -> None:
         cal.add_row(str(row["decile"]), str(row["drives"]), _num(row["mean_predicted"], ".2%"),
                     _num(row["predicted_failures"], ".1f"), str(row["observed_failures"]))
     console.print(cal)
+
+
+def return_lines(returns: int) -> list[str]:
+    """A stderr note when drives came back after a removal (each return is a new at-risk period)."""
+    if not returns:
+        return []
+    return [f"note: {returns} drive(s) seen again after a removal: each removal counted once, "
+            "and each return watched from its age then (docs/survival.md, section 1)"]
 
 
 def exclusion_lines(exclusions: pd.DataFrame, show: int = 5) -> list[str]:

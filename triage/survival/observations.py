@@ -14,12 +14,17 @@ changed) and merged into what was kept so far, so a 9-million-row table never ha
 memory whole:
 
     scan_frame / scan_store  ->  Scan (reduced rows + data-quality findings)
-    observations(scan, removals, ...)  ->  Observations (per-drive table, episodes, exclusions)
+    observations(scan, removals, ...)  ->  Observations (drive-period table, episodes, exclusions)
 
-Exit age of a removed drive: the power-on hours of its last snapshot plus the wall-clock hours
-from that snapshot to the removal -- fleet drives run around the clock. A removal stamped up to
-``REMOVAL_TOLERANCE`` before the drive's last snapshot (a log written at the start of the day)
-is taken to happen at that last snapshot.
+A drive's history is cut into periods: at each removal it came back from (the removal keeps
+its event; the drive re-enters at its age when seen again) and at each change of a ``by`` key
+such as the firmware (exposure before the first capture showing the new value counts for the
+old one). Most drives have one period; ``docs/survival.md`` section 1 has the rules.
+
+Exit age of a period ended by a removal: the power-on hours of its last snapshot plus the
+wall-clock hours from that snapshot to the removal -- fleet drives run around the clock. A
+removal stamped up to ``REMOVAL_TOLERANCE`` before the period's last snapshot (a log written at
+the start of the day) is taken to happen at that last snapshot.
 """
 
 from __future__ import annotations
@@ -82,7 +87,13 @@ JUMP_SLACK_HOURS = 2.0
 JUMP_RATE = 0.01
 REMOVAL_TOLERANCE = timedelta(hours=24)
 
-EVENT_REASONS = {True: ("failed", "proactive"), False: ("failed",)}
+#: The removal reasons that end a period with an event, by event definition. ``failures`` (the
+#: default) censors a proactive pull: many pulled drives were healthy, and counting them as
+#: failures bends the hazard towards whenever pulls happen (docs/survival.md, section 1).
+#: ``replacements`` is what an operator replaces, the measure behind an ARR.
+EVENT_DEFINITIONS = {"failures": ("failed",), "replacements": ("failed", "proactive")}
+EVENT_REASONS = {True: EVENT_DEFINITIONS["replacements"], False: EVENT_DEFINITIONS["failures"]}
+#: Most telling first: several records of one pull keep the first of these.
 KNOWN_REASONS = ("failed", "proactive", "retired")
 
 _NS_PER_HOUR = 3_600_000_000_000
@@ -203,8 +214,10 @@ def _ns(stamps: pd.Series) -> np.ndarray:
     return pd.to_datetime(stamps, utc=True).dt.tz_convert(None).to_numpy(dtype="datetime64[ns]").view(np.int64)
 
 
-def _reduce_chunk(frame: pd.DataFrame, chunk: int, problems: dict[str, str]) -> pd.DataFrame:
-    """Keep each drive's first/last row in this chunk and every row where its covariates changed.
+def _reduce_chunk(frame: pd.DataFrame, chunk: int, problems: dict[str, str],
+                  marks: dict | None = None) -> pd.DataFrame:
+    """Keep each drive's first/last row in this chunk, every row where its covariates or a
+    cohort key changed, and the rows either side of each of its removals (``_removal_pins``).
 
     Works on row numbers: the chunk is sorted as an index array and only the kept rows (a
     fraction of a nightly history) are ever copied out of the frame.
@@ -228,10 +241,15 @@ def _reduce_chunk(frame: pd.DataFrame, chunk: int, problems: dict[str, str]) -> 
     values = covariate_features(frame)[list(FEATURES)].to_numpy()[order]
     changed = np.ones(len(order), dtype=bool)
     changed[1:] = np.any(values[1:] != values[:-1], axis=1) | ~same[1:]
+    # a cohort key that changes (a firmware update) starts a new cohort period at that snapshot
+    for column in COHORT_COLUMNS:
+        if column in frame.columns:
+            key, _ = pd.factorize(frame[column].to_numpy()[order], use_na_sentinel=True)
+            changed[1:] |= key[1:] != key[:-1]
     last = np.ones(len(order), dtype=bool)
     last[:-1] = ~same[1:]
     first = ~same
-    keep = changed | last
+    keep = changed | last | _removal_pins(serials, same, stamp, marks)
     kept = frame.iloc[order[keep], [frame.columns.get_loc(c) for c in SNAPSHOT_COLUMNS if c in frame.columns]]
     kept = kept.reset_index(drop=True)
     kept["power_on_hours"] = poh[keep]
@@ -242,6 +260,33 @@ def _reduce_chunk(frame: pd.DataFrame, chunk: int, problems: dict[str, str]) -> 
     kept["chunk_first"] = first[keep]
     kept["chunk_last"] = last[keep]
     return kept
+
+
+def _removal_pins(serials: np.ndarray, same: np.ndarray, stamp_ns: np.ndarray, marks: dict | None) -> np.ndarray:
+    """The snapshots either side of each removal: the last one at or before it (plus the
+    tolerance) and the first one after. A drive seen again after a removal (back from repair)
+    re-enters at the age of that first snapshot, so neither may be reduced away."""
+    pinned = np.zeros(len(serials), dtype=bool)
+    if not marks or len(serials) == 0:
+        return pinned
+    starts = np.flatnonzero(~same)
+    ends = np.r_[starts[1:], len(serials)]
+    removed = np.isin(serials[starts], list(marks))
+    for lo, hi in zip(starts[removed], ends[removed]):
+        after = lo + np.searchsorted(stamp_ns[lo:hi], marks[serials[lo]], side="right")
+        pinned[after[after < hi]] = True
+        pinned[after[after > lo] - 1] = True
+    return pinned
+
+
+def removal_marks(removals: pd.DataFrame | None) -> dict | None:
+    """serial -> sorted removal times plus ``REMOVAL_TOLERANCE`` (ns), for the scan's pins."""
+    if removals is None or len(removals) == 0:
+        return None
+    removals = removals[removals["serial"].notna() & removals["removed_at"].notna()]
+    stamps = _ns(removals["removed_at"]) + int(REMOVAL_TOLERANCE / timedelta(microseconds=1)) * 1000
+    frame = pd.DataFrame({"serial": removals["serial"].to_numpy(), "mark": stamps}).sort_values("mark")
+    return {serial: group.to_numpy(dtype=np.int64) for serial, group in frame.groupby("serial")["mark"]}
 
 
 def _flag_counter_problems(serials, same, stamp_ns, poh, problems: dict[str, str]) -> None:
@@ -266,8 +311,13 @@ def _flag_counter_problems(serials, same, stamp_ns, poh, problems: dict[str, str
                                 f"time at {when}")
 
 
-def scan_frame(snapshots: pd.DataFrame, cut: pd.Timestamp | None = None) -> Scan:
-    """Scan an in-memory snapshot frame (tests, small stores); ``cut`` splits it into two chunks."""
+def scan_frame(snapshots: pd.DataFrame, cut: pd.Timestamp | None = None,
+               removals: pd.DataFrame | None = None) -> Scan:
+    """Scan an in-memory snapshot frame (tests, small stores); ``cut`` splits it into two chunks.
+
+    ``removals``: the removal log, so the snapshots either side of each removal are kept and a
+    drive back from repair re-enters at its true age (without it, at its next kept snapshot).
+    """
     missing = [c for c in ("serial", "taken_at", "power_on_hours") if c not in snapshots.columns]
     if missing:
         raise ValueError(f"snapshots lack column(s) {', '.join(missing)}")
@@ -276,12 +326,13 @@ def scan_frame(snapshots: pd.DataFrame, cut: pd.Timestamp | None = None) -> Scan
         pieces = [(0, snapshots)]
     else:
         pieces = [(0, snapshots[(taken < cut).to_numpy()]), (1, snapshots[(taken >= cut).to_numpy()])]
-    return _scan_pieces(iter(pieces))
+    return _scan_pieces(iter(pieces), removal_marks(removals))
 
 
 def scan_store(store, chunk_days: int = 7, cut: pd.Timestamp | None = None,
-               progress: Callable[[int, int], None] | None = None) -> Scan:
-    """Scan the store's snapshots in chunks of ``chunk_days`` days (one boundary falls on ``cut``)."""
+               progress: Callable[[int, int], None] | None = None, removals: pd.DataFrame | None = None) -> Scan:
+    """Scan the store's snapshots in chunks of ``chunk_days`` days (one boundary falls on ``cut``);
+    ``removals`` as in ``scan_frame``."""
     days = store.days("snapshots")
     if not days:
         return Scan(rows=pd.DataFrame(columns=[*SNAPSHOT_COLUMNS, *FEATURES]))
@@ -304,10 +355,10 @@ def scan_store(store, chunk_days: int = 7, cut: pd.Timestamp | None = None,
         if progress:
             progress(len(windows), len(windows))
 
-    return _scan_pieces(pieces())
+    return _scan_pieces(pieces(), removal_marks(removals))
 
 
-def _scan_pieces(pieces: Iterable[tuple[int, pd.DataFrame]]) -> Scan:
+def _scan_pieces(pieces: Iterable[tuple[int, pd.DataFrame]], marks: dict | None = None) -> Scan:
     """Reduce (segment, chunk) pieces as they come: each chunk is boiled down, then merged with
     what its segment kept so far and boiled down again, so memory holds one chunk plus about a
     row per drive and covariate change -- never the history. A segment (the training and the
@@ -325,10 +376,11 @@ def _scan_pieces(pieces: Iterable[tuple[int, pd.DataFrame]]) -> Scan:
         taken = pd.to_datetime(piece["taken_at"], utc=True)
         first = taken.min() if first is None else min(first, taken.min())
         last = taken.max() if last is None else max(last, taken.max())
-        reduced = _reduce_chunk(piece, segment, problems)
+        reduced = _reduce_chunk(piece, segment, problems, marks)
         del piece
         if segment in segments:
-            reduced = _reduce_chunk(pd.concat([segments[segment], reduced], ignore_index=True), segment, problems)
+            reduced = _reduce_chunk(pd.concat([segments[segment], reduced], ignore_index=True), segment, problems,
+                                    marks)
         segments[segment] = reduced
     kept = [segments[k] for k in sorted(segments)]
     if not kept:
@@ -354,24 +406,41 @@ def _scan_pieces(pieces: Iterable[tuple[int, pd.DataFrame]]) -> Scan:
 
 @dataclass
 class Observations:
-    """One row per usable drive, the covariate episodes, and the drives left out (with why)."""
+    """One row per cohort period of a drive, the covariate episodes, and the drives left out.
+
+    ``drives`` has a row per (drive, period): a drive's history is cut at each removal it came
+    back from and at each change of a ``by`` key (a firmware update), so most drives have one
+    row. ``period`` numbers a drive's rows from 0; ``returned`` marks a period that began when
+    the drive came back after a removal.
+    """
 
     drives: pd.DataFrame
     episodes: pd.DataFrame  # serial, cohort, start_hours, stop_hours, event, FEATURES
     exclusions: pd.DataFrame  # serial, reason
     by: tuple[str, ...]
     count_proactive: bool
+    returns: int = 0  # drives seen again after a removal (each return starts a new period)
+
+    @property
+    def events(self) -> str:
+        """The event definition in use: 'failures' or 'replacements' (``EVENT_DEFINITIONS``)."""
+        return event_definition(self.count_proactive)
 
     def cohort(self, label: str) -> pd.DataFrame:
         return self.drives[self.drives["cohort"] == label]
 
 
-def observations(scan: Scan, removals: pd.DataFrame, by: Sequence[str] = ("model",),
-                 count_proactive: bool = True, until: pd.Timestamp | None = None) -> Observations:
-    """Build the per-drive observation table and Cox episodes from a scan and the removal log.
+def event_definition(count_proactive: bool) -> str:
+    return "replacements" if count_proactive else "failures"
 
-    ``until``: use only snapshots and removals before this moment (the training side of a
-    held-out time split).
+
+def observations(scan: Scan, removals: pd.DataFrame, by: Sequence[str] = ("model",),
+                 count_proactive: bool = False, until: pd.Timestamp | None = None) -> Observations:
+    """Build the drive-period table and Cox episodes from a scan and the removal log.
+
+    ``count_proactive``: a proactive pull ends its period with an event (``replacements``);
+    by default only ``failed`` does (``failures``) and a pull is censored. ``until``: use only
+    snapshots and removals before this moment (the training side of a held-out time split).
     """
     by = check_by(by)
     rows = scan.rows
@@ -383,24 +452,30 @@ def observations(scan: Scan, removals: pd.DataFrame, by: Sequence[str] = ("model
     for serial in scan.serials_seen - with_age:
         if until is None:
             excluded.setdefault(serial, "no snapshot reports power_on_hours")
-    rows = rows[~rows["serial"].isin(list(excluded))] if excluded and len(rows) else rows
-
     removals = _clean_removals(removals, until)
-    drives = _per_drive(rows, by)
-    drives, removal_problems = _attach_removals(drives, removals, count_proactive)
-    excluded.update(removal_problems)
+    unknown = removals[~removals["reason"].isin(KNOWN_REASONS)]
+    for serial, reason in zip(unknown["serial"], unknown["reason"]):
+        excluded.setdefault(serial, f"removal reason {reason!r} is not one of {', '.join(KNOWN_REASONS)}")
+    removals = removals[removals["reason"].isin(KNOWN_REASONS)]
+    rows = rows[~rows["serial"].isin(list(excluded))] if excluded and len(rows) else rows
+    rows = rows.reset_index(drop=True)
+
+    life, pulls, removal_problems = _lives(rows, removals)
     if removal_problems:
-        drives = drives[~drives["serial"].isin(list(removal_problems))]
-        rows = rows[~rows["serial"].isin(list(removal_problems))]
+        excluded.update(removal_problems)
+        keep = ~rows["serial"].isin(list(removal_problems)).to_numpy()
+        rows, life = rows[keep].reset_index(drop=True), life[keep]
+        pulls = _lives(rows, removals[~removals["serial"].isin(list(removal_problems))])[1]
     orphans = sorted(set(removals["serial"]) - set(scan.serials_seen)) if until is None else []
     for serial in orphans:
         excluded.setdefault(serial, "removal recorded but no snapshot of the drive")
 
-    drives = drives.reset_index(drop=True)
-    episodes = _episodes(rows, drives)
+    drives, period_of_row = _periods(rows, life, pulls, by, count_proactive)
+    episodes = _episodes(rows, period_of_row, drives)
     exclusions = pd.DataFrame(sorted(excluded.items()), columns=["serial", "reason"])
+    returns = int(drives.loc[drives["returned"].to_numpy(dtype=bool), "serial"].nunique()) if len(drives) else 0
     return Observations(drives=drives, episodes=episodes, exclusions=exclusions, by=by,
-                        count_proactive=count_proactive)
+                        count_proactive=count_proactive, returns=returns)
 
 
 def _clean_removals(removals: pd.DataFrame, until) -> pd.DataFrame:
@@ -416,109 +491,176 @@ def _clean_removals(removals: pd.DataFrame, until) -> pd.DataFrame:
     return removals
 
 
-def _per_drive(rows: pd.DataFrame, by) -> pd.DataFrame:
-    """First and latest snapshot of each drive (rows are sorted by serial, taken_at)."""
+def _drive_slices(serial: np.ndarray) -> dict:
+    """serial -> (first row, end row) of its rows (rows sorted by serial, then time)."""
+    starts = np.flatnonzero(np.r_[True, serial[1:] != serial[:-1]]) if len(serial) else np.array([], int)
+    ends = np.r_[starts[1:], len(serial)]
+    return dict(zip(serial[starts], zip(starts, ends)))
+
+
+def _lives(rows: pd.DataFrame, removals: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame, dict[str, str]]:
+    """Cut each drive's rows at its removals: ``life`` (per row: removals before it) and the pulls.
+
+    A removal ends the life whose last snapshot is the latest at or before the removal time
+    plus ``REMOVAL_TOLERANCE``; snapshots after that are the drive back from repair, a new life.
+    Several records between the same two snapshots are one pull (a 'failed' then 'retired'
+    for the same drive): it happened at the earliest record's time, for the most telling
+    reason among them (failed before proactive before retired), so no removal counts twice
+    and a later 'retired' never erases a 'failed'.
+    """
+    life = np.zeros(len(rows), dtype=np.int32)
+    problems: dict[str, str] = {}
+    pulls = []
+    if len(rows) and len(removals):
+        serial = rows["serial"].to_numpy()
+        where = _drive_slices(serial)
+        stamp = _ns(rows["taken_at"])
+        tolerance = int(REMOVAL_TOLERANCE / timedelta(microseconds=1)) * 1000
+        rank = {reason: i for i, reason in enumerate(KNOWN_REASONS)}
+        ordered = removals.sort_values("removed_at", kind="stable")
+        for name, group in ordered.groupby("serial", sort=False):
+            if name not in where:
+                continue
+            lo, hi = where[name]
+            removed = _ns(group["removed_at"])
+            after_row = np.searchsorted(stamp[lo:hi], removed + tolerance, side="right") - 1
+            if after_row[0] < 0:
+                problems[name] = (f"removal on {group['removed_at'].iloc[0]:%Y-%m-%d} comes before the drive's "
+                                  f"first snapshot ({rows['taken_at'].iloc[lo]:%Y-%m-%d})")
+                continue
+            reasons = group["reason"].to_numpy()
+            for row in np.unique(after_row):
+                these = after_row == row
+                reason = min(reasons[these], key=rank.__getitem__)
+                pulls.append((name, lo + int(row), int(removed[these].min()), reason))
+                life[lo + int(row) + 1:hi] += 1
+    frame = pd.DataFrame(pulls, columns=["serial", "row", "removed_ns", "reason"])
+    return life, frame, problems
+
+
+def _filled_keys(rows: pd.DataFrame, by) -> pd.DataFrame:
+    """The ``by`` keys of each row, a missing value carried from the drive's nearest known one:
+    a capture that lacks the firmware string is not a firmware change."""
+    keys = rows[[c for c in by if c in rows.columns]].copy()
+    for column in by:
+        if column not in keys:
+            keys[column] = None
+    if keys.isna().to_numpy().any():
+        grouped = keys.groupby(rows["serial"].to_numpy(), sort=False)
+        keys = grouped.ffill().fillna(grouped.bfill())
+    return keys[list(by)]
+
+
+def _periods(rows: pd.DataFrame, life: np.ndarray, pulls: pd.DataFrame, by,
+             count_proactive: bool) -> tuple[pd.DataFrame, np.ndarray]:
+    """One row per (drive, life, cohort label) run of snapshots, and each row's period number.
+
+    A period starts at its first snapshot (``entry_hours``, ``first_taken_at``). It ends at the
+    first snapshot showing a new ``by`` value (the next period starts there, so exposure is
+    split at that capture and a failure belongs to the cohort it ran in), at its pull (last
+    snapshot's age plus the wall-clock hours to the removal), or, censored, at its last snapshot.
+    """
+    tail_columns = ["serial", *COHORT_COLUMNS, "taken_at", "power_on_hours", *COVARIATE_SOURCES, *FEATURES]
     if rows.empty:
         columns = {"serial": object, "cohort": object, "first_taken_at": "datetime64[ns, UTC]",
                    "entry_hours": float, **{c: object for c in COHORT_COLUMNS},
                    "last_taken_at": "datetime64[ns, UTC]", "last_hours": float,
-                   **{c: float for c in (*COVARIATE_SOURCES, *FEATURES)}}
-        return pd.DataFrame({c: pd.Series(dtype=t) for c, t in columns.items()})
+                   **{c: float for c in (*COVARIATE_SOURCES, *FEATURES)},
+                   "removal_reason": object, "exit_at": "datetime64[ns, UTC]", "exit_hours": float,
+                   "drive_days": float, "event": bool, "failure": bool, "replacement": bool,
+                   "period": np.int64, "returned": bool}
+        return pd.DataFrame({c: pd.Series(dtype=t) for c, t in columns.items()}), np.zeros(0, dtype=np.int64)
+    n = len(rows)
     serial = rows["serial"].to_numpy()
-    is_first = np.ones(len(rows), dtype=bool)
-    is_first[1:] = serial[1:] != serial[:-1]
-    is_last = np.ones(len(rows), dtype=bool)
-    is_last[:-1] = is_first[1:]
-    head = rows.loc[is_first, ["serial", "taken_at", "power_on_hours"]].reset_index(drop=True)
-    tail_columns = [c for c in ("serial", *COHORT_COLUMNS, "taken_at", "power_on_hours", *COVARIATE_SOURCES,
-                                *FEATURES) if c in rows.columns]
-    tail = rows.loc[is_last, tail_columns].reset_index(drop=True)
-    drives = tail.rename(columns={"taken_at": "last_taken_at", "power_on_hours": "last_hours"})
+    keys = _filled_keys(rows, by)
+    label = cohort_labels(keys, by).to_numpy()
+    new_drive = np.r_[True, serial[1:] != serial[:-1]]
+    new_life = new_drive | np.r_[False, life[1:] != life[:-1]]
+    new_period = new_life | np.r_[False, label[1:] != label[:-1]]
+    period_of_row = np.cumsum(new_period) - 1
+    first = np.flatnonzero(new_period)
+    last = np.r_[first[1:] - 1, n - 1]
+    stamp = _ns(rows["taken_at"])
+    poh = rows["power_on_hours"].to_numpy(dtype=float)
+
+    exit_ns, exit_hours = stamp[last].copy(), poh[last].copy()
+    following = np.minimum(last + 1, n - 1)
+    by_change = (last + 1 < n) & ~new_life[following]
+    exit_ns[by_change], exit_hours[by_change] = stamp[following[by_change]], poh[following[by_change]]
+    reason = np.full(len(first), None, dtype=object)
+    if len(pulls):
+        ended = period_of_row[pulls["row"].to_numpy()]
+        reason[ended] = pulls["reason"].to_numpy()
+        removed_ns = np.maximum(pulls["removed_ns"].to_numpy(dtype=np.int64), stamp[last[ended]])
+        exit_hours[ended] = poh[last[ended]] + (removed_ns - stamp[last[ended]]) / _NS_PER_HOUR
+        exit_ns[ended] = removed_ns
+
+    present = [c for c in tail_columns if c in rows.columns]
+    drives = rows.iloc[last][present].reset_index(drop=True)
+    drives = drives.rename(columns={"taken_at": "last_taken_at", "power_on_hours": "last_hours"})
     for column in COHORT_COLUMNS:
-        if column not in drives:
+        if column in by:
+            drives[column] = keys[column].to_numpy()[first]
+        elif column not in drives:
             drives[column] = None
-    drives.insert(1, "first_taken_at", head["taken_at"].to_numpy())
-    drives.insert(2, "entry_hours", head["power_on_hours"].to_numpy(dtype=float))
-    drives["first_taken_at"] = pd.to_datetime(drives["first_taken_at"], utc=True)
-    drives.insert(1, "cohort", cohort_labels(drives, by).to_numpy())
-    return drives
-
-
-def _attach_removals(drives: pd.DataFrame, removals: pd.DataFrame, count_proactive: bool):
-    """Exit time, exit age and event of each drive from the removal log."""
-    problems: dict[str, str] = {}
-    if drives.empty:
-        empty = drives.assign(removal_reason=pd.Series(dtype=object),
-                              exit_at=pd.Series(dtype="datetime64[ns, UTC]"),
-                              exit_hours=pd.Series(dtype=float), drive_days=pd.Series(dtype=float),
-                              event=pd.Series(dtype=bool))
-        return empty, problems
-    unknown = removals[~removals["reason"].isin(KNOWN_REASONS)]
-    for serial, reason in zip(unknown["serial"], unknown["reason"]):
-        problems.setdefault(serial, f"removal reason {reason!r} is not one of {', '.join(KNOWN_REASONS)}")
-    removals = removals[removals["reason"].isin(KNOWN_REASONS)]
-    merged = drives[["serial", "last_taken_at"]].merge(removals, on="serial", how="inner")
-    after = merged[merged["removed_at"] >= merged["last_taken_at"] - REMOVAL_TOLERANCE]
-    before = merged[merged["removed_at"] < merged["last_taken_at"] - REMOVAL_TOLERANCE]
-    # The earliest removal at or after the drive's last snapshot is the one that ended it.
-    chosen = after.sort_values("removed_at").drop_duplicates("serial", keep="first")
-    ended = set(chosen["serial"])
-    for serial, removed_at, last in zip(before["serial"], before["removed_at"], before["last_taken_at"]):
-        if serial in ended:
-            continue
-        problems.setdefault(serial, f"snapshots continue after its removal on {removed_at:%Y-%m-%d}"
-                                    f" (last snapshot {last:%Y-%m-%d})")
-    drives = drives.merge(chosen[["serial", "removed_at", "reason"]], on="serial", how="left")
-    drives = drives.rename(columns={"reason": "removal_reason"})
-    removed = drives["removed_at"].notna().to_numpy()
-    last_ns = _ns(drives["last_taken_at"])
-    exit_ns = last_ns.copy()
-    exit_ns[removed] = np.maximum(_ns(drives["removed_at"][removed]), last_ns[removed])
+    drives.insert(1, "cohort", label[first])
+    drives.insert(2, "first_taken_at", pd.to_datetime(stamp[first], utc=True))
+    drives.insert(3, "entry_hours", poh[first])
+    drives["last_taken_at"] = pd.to_datetime(drives["last_taken_at"], utc=True)
+    # a period cut by a key change was last seen at the capture showing the change (the
+    # snapshot before it may have been reduced away; its covariates are the same)
+    drives.loc[by_change, "last_taken_at"] = pd.to_datetime(exit_ns[by_change], utc=True)
+    drives.loc[by_change, "last_hours"] = exit_hours[by_change]
+    drives["removal_reason"] = reason
     drives["exit_at"] = pd.to_datetime(exit_ns, utc=True)
-    gap_hours = (exit_ns - last_ns) / _NS_PER_HOUR
-    drives["exit_hours"] = drives["last_hours"].to_numpy(dtype=float) + gap_hours
-    observed_ns = exit_ns - _ns(drives["first_taken_at"])
-    drives["drive_days"] = observed_ns / _NS_PER_DAY
+    drives["exit_hours"] = exit_hours
+    drives["drive_days"] = (exit_ns - stamp[first]) / _NS_PER_DAY
+    drives["failure"] = drives["removal_reason"].isin(EVENT_DEFINITIONS["failures"]).to_numpy()
+    drives["replacement"] = drives["removal_reason"].isin(EVENT_DEFINITIONS["replacements"]).to_numpy()
     drives["event"] = drives["removal_reason"].isin(EVENT_REASONS[count_proactive]).to_numpy()
-    return drives.drop(columns=["removed_at"]), problems
+    drive_of_period = np.cumsum(new_drive[first]) - 1
+    drives["period"] = np.arange(len(first)) - np.flatnonzero(new_drive[first])[drive_of_period]
+    drives["returned"] = life[first] > 0
+    # keep the column order of one row per drive, the period columns after
+    order = ["serial", "cohort", "first_taken_at", "entry_hours",
+             *[c for c in drives.columns if c not in ("serial", "cohort", "first_taken_at", "entry_hours",
+                                                      "removal_reason", "exit_at", "exit_hours", "drive_days",
+                                                      "event", "failure", "replacement", "period", "returned")],
+             "removal_reason", "exit_at", "exit_hours", "drive_days", "event", "failure", "replacement",
+             "period", "returned"]
+    return drives[order], period_of_row
 
 
-def _episodes(rows: pd.DataFrame, drives: pd.DataFrame) -> pd.DataFrame:
+def _episodes(rows: pd.DataFrame, period_of_row: np.ndarray, drives: pd.DataFrame) -> pd.DataFrame:
     """Counting-process rows (start_hours, stop_hours] with covariates constant on each.
 
-    Consecutive snapshots with the same covariates collapse into one episode; a covariate seen
-    at a snapshot applies from that snapshot's age to the next change (it is known then, not
-    before). The last episode ends at the drive's exit age and carries its event.
+    Consecutive snapshots of one period with the same covariates collapse into one episode; a
+    covariate seen at a snapshot applies from that snapshot's age to the next change (it is
+    known then, not before). A period's last episode ends at its exit age and carries its event.
     """
     columns = ["serial", "cohort", "start_hours", "stop_hours", "event", *FEATURES]
     if rows.empty or drives.empty:
         return pd.DataFrame(columns=columns)
-    rows = rows[rows["serial"].isin(drives["serial"])]
-    serial = rows["serial"].to_numpy()
     values = rows[list(FEATURES)].to_numpy()
-    new_drive = np.ones(len(rows), dtype=bool)
-    new_drive[1:] = serial[1:] != serial[:-1]
-    start = new_drive.copy()
+    new_period = np.r_[True, period_of_row[1:] != period_of_row[:-1]]
+    start = new_period.copy()
     start[1:] |= np.any(values[1:] != values[:-1], axis=1)
     ep = rows.loc[start, ["serial", "power_on_hours", *FEATURES]].reset_index(drop=True)
     ep = ep.rename(columns={"power_on_hours": "start_hours"})
-    ep_serial = ep["serial"].to_numpy()
-    last_of_drive = np.ones(len(ep), dtype=bool)
-    last_of_drive[:-1] = ep_serial[1:] != ep_serial[:-1]
-    info = drives.set_index("serial")[["cohort", "exit_hours", "event"]]
-    info = info.loc[ep_serial]
+    period = period_of_row[start]
+    last_of_period = np.r_[period[1:] != period[:-1], True]
     stop = np.empty(len(ep))
     stop[:-1] = ep["start_hours"].to_numpy()[1:]
-    stop[last_of_drive] = info["exit_hours"].to_numpy(dtype=float)[last_of_drive]
+    stop[last_of_period] = drives["exit_hours"].to_numpy(dtype=float)[period[last_of_period]]
     ep["stop_hours"] = stop
-    ep["event"] = last_of_drive & info["event"].to_numpy(dtype=bool)
-    ep["cohort"] = info["cohort"].to_numpy()
+    ep["event"] = last_of_period & drives["event"].to_numpy(dtype=bool)[period]
+    ep["cohort"] = drives["cohort"].to_numpy()[period]
     # An episode without risk time (power-on hours did not advance) is dropped; its event, if
-    # any, moves to the drive's previous episode, which ends at that same age.
+    # any, moves to the period's previous episode, which ends at that same age.
     empty = ep["stop_hours"].to_numpy() <= ep["start_hours"].to_numpy()
-    carry = empty & ep["event"].to_numpy()
-    prev = np.flatnonzero(carry) - 1
-    ok = (prev >= 0) & (ep_serial[np.maximum(prev, 0)] == ep_serial[np.flatnonzero(carry)])
+    carry = np.flatnonzero(empty & ep["event"].to_numpy())
+    prev = carry - 1
+    ok = (prev >= 0) & (period[np.maximum(prev, 0)] == period[carry])
     ep.loc[prev[ok], "event"] = True
     ep = ep[~empty].reset_index(drop=True)
     return ep[columns]

@@ -1,4 +1,4 @@
-"""The store-level library functions behind ``triage fit``, ``triage cohorts`` and ``triage survival``."""
+"""The store-level library functions behind ``triage fit``, ``cohorts``, ``survival`` and ``compare``."""
 
 from __future__ import annotations
 
@@ -8,6 +8,7 @@ from typing import Callable, Sequence
 import pandas as pd
 
 from triage.survival.cohorts import SurvivalReport, cohort_table, survival_report
+from triage.survival.compare import Comparison, compare_cohorts, versus_fleet
 from triage.survival.landmark import store_reader
 from triage.survival.model import FleetRiskModel
 from triage.survival.observations import REMOVAL_COLUMNS, Observations, observations, scan_store
@@ -32,24 +33,36 @@ def read_removals(store) -> pd.DataFrame:
     return store.read("removals", columns=list(REMOVAL_COLUMNS))
 
 
-def load_observations(store, by: Sequence[str] = ("model",), count_proactive: bool = True,
+def load_observations(store, by: Sequence[str] = ("model",), count_proactive: bool = False,
                       progress: Callable[[int, int], None] | None = None) -> Observations:
     """The observation table of a store (reads only the columns the survival layer uses)."""
     store = _store(store)
     _check_not_empty(store)
-    scan = scan_store(store, progress=progress)
-    return observations(scan, read_removals(store), by, count_proactive)
+    removals = read_removals(store)
+    scan = scan_store(store, progress=progress, removals=removals)
+    return observations(scan, removals, by, count_proactive)
 
 
-def cohorts_of_store(store, by: Sequence[str] = ("model",), count_proactive: bool = True,
-                     mttf_hours: float | None = None,
+def cohorts_of_store(store, by: Sequence[str] = ("model",), count_proactive: bool = False,
+                     mttf_hours: float | None = None, vs_fleet: bool = False,
                      progress: Callable[[int, int], None] | None = None) -> tuple[pd.DataFrame, Observations]:
-    """(cohort table, observations) for ``triage cohorts``."""
+    """(cohort table, observations) for ``triage cohorts``; ``vs_fleet`` adds each cohort's rate
+    ratio against the rest of the fleet (``compare.versus_fleet``)."""
     obs = load_observations(store, by, count_proactive, progress)
-    return cohort_table(obs, mttf_hours=mttf_hours), obs
+    table = cohort_table(obs, mttf_hours=mttf_hours)
+    if vs_fleet:
+        table = table.merge(versus_fleet(obs), on="cohort", how="left")
+    return table, obs
 
 
-def survival_of_store(store, cohort: str, by: Sequence[str] = ("model",), count_proactive: bool = True,
+def compare_of_store(store, a: str, b: str, by: Sequence[str] = ("model",), count_proactive: bool = False,
+                     progress: Callable[[int, int], None] | None = None) -> tuple[Comparison, Observations]:
+    """(comparison of cohort a with cohort b, observations) for ``triage compare``."""
+    obs = load_observations(store, by, count_proactive, progress)
+    return compare_cohorts(obs, a, b), obs
+
+
+def survival_of_store(store, cohort: str, by: Sequence[str] = ("model",), count_proactive: bool = False,
                       mttf_hours: float | None = None,
                       progress: Callable[[int, int], None] | None = None) -> tuple[SurvivalReport, Observations]:
     """(survival report of one cohort, observations) for ``triage survival``."""
@@ -67,7 +80,8 @@ def fit_store(store, horizon_days: float = 30, by: Sequence[str] = ("model",), c
     model._validated()
     if say:
         say("reading snapshots")
-    scan = scan_store(store, progress=progress)
-    model.fit_history(scan, store_reader(store), read_removals(store), progress=say)
+    removals = read_removals(store)
+    scan = scan_store(store, progress=progress, removals=removals)
+    model.fit_history(scan, store_reader(store), removals, progress=say)
     path = model.save(store.models_dir)
     return model, path

@@ -24,9 +24,16 @@ Wald range is meaningless while the profile range honestly runs from ~0 to well 
 limit that the likelihood never reaches inside [SHAPE_MIN, SHAPE_MAX] is reported as 0 or inf.
 The scale's range is a Wald range on the log scale at the maximum (delta method).
 
-Phase (the bathtub curve's three parts): shape clearly below 1 (upper limit < 1) is a falling
-hazard, early-life failures; clearly above 1 (lower limit > 1) a rising hazard, wear-out; a
-range covering 1 cannot be told from a constant, random-failure hazard.
+Phase (the bathtub curve's three parts), from the shape's range, never from the point estimate:
+the whole range below 1 is a falling hazard, early-life failures; the whole range above 1 a rising
+hazard, wear-out; the whole range within [2/3, 1.5] a hazard close enough to constant to call
+random failures (our choice of band, no source: over a drive's first five years a shape of 1.5
+raises the hazard about 2.2-fold between ages 1 and 5 years, 2/3 lowers it as much). Any other
+range -- across 1 but reaching past the band -- is ``undetermined``: the data cannot tell the
+phases apart, and calling that "random" would read as news it is not. The note says why: few
+failures (under ``FEW_FAILURES`` even complete lifetimes give a range wider than the band, since
+var(log shape) is about (6 / pi^2) / d; Meeker & Escobar 1998, 8.4, from memory), or a narrow
+window of ages watched (the oldest exit under ``NARROW_AGE_RATIO`` times the youngest entry).
 """
 
 from __future__ import annotations
@@ -41,8 +48,16 @@ from scipy.stats import chi2, norm
 EARLY_LIFE = "early-life"
 RANDOM = "random"
 WEAR_OUT = "wear-out"
+UNDETERMINED = "undetermined"
 TOO_FEW = "too few failures"
 NO_FIT = "no fit"
+#: A shape range inside this band is called random failures (module docstring; our choice).
+RANDOM_BAND = (2 / 3, 1.5)
+#: Below this many failures the shape range cannot fit in RANDOM_BAND even with complete data:
+#: 1.96 * sqrt(6 / pi^2 / d) <= log 1.5 needs d >= 14.2 (module docstring).
+FEW_FAILURES = 15
+#: Oldest exit age over youngest entry age below this: a narrow window (our choice, no source).
+NARROW_AGE_RATIO = 2.0
 #: Fewer failures than this and the shape is not estimable in any useful sense.
 MIN_FAILURES = 2
 
@@ -57,6 +72,7 @@ class WeibullFit:
     scale_high: float
     phase: str
     failures: int
+    phase_note: str = ""  # why the phase is undetermined (empty otherwise)
 
     def survival(self, age_hours, given_hours: float = 0.0) -> np.ndarray:
         """S(age) / S(given): survival to ``age`` for a drive known alive at ``given``."""
@@ -79,7 +95,23 @@ def phase_of(shape_low: float, shape_high: float) -> str:
         return EARLY_LIFE
     if shape_low > 1:
         return WEAR_OUT
-    return RANDOM
+    if RANDOM_BAND[0] <= shape_low and shape_high <= RANDOM_BAND[1]:
+        return RANDOM
+    return UNDETERMINED
+
+
+def undetermined_note(shape_low: float, shape_high: float, failures: int, youngest_entry_hours: float,
+                      oldest_exit_hours: float) -> str:
+    """Why a shape range decides no phase, in words an operator can act on."""
+    years = lambda hours: hours / 8766.0  # noqa: E731  (365.25-day years, as elsewhere)
+    why = []
+    if failures < FEW_FAILURES:
+        why.append(f"only {failures} failures")
+    if oldest_exit_hours < NARROW_AGE_RATIO * max(youngest_entry_hours, 1.0):
+        why.append(f"ages watched only {years(youngest_entry_hours):.1f}-{years(oldest_exit_hours):.1f} years")
+    reason = " and ".join(why) or f"{failures} failures are not yet enough to tell"
+    return (f"shape {shape_low:.2f}-{shape_high:.2f} spans more than random ({RANDOM_BAND[0]:.2f}-"
+            f"{RANDOM_BAND[1]:.1f}): {reason}")
 
 
 def _empty(phase: str, failures: int) -> WeibullFit:
@@ -170,11 +202,13 @@ def fit_weibull(entry_hours, exit_hours, event, alpha: float = 0.05) -> WeibullF
     drop = chi2.ppf(1 - alpha, 1) / 2
     shape_low = _shape_limit(profile, shape, drop, SHAPE_MIN)
     shape_high = _shape_limit(profile, shape, drop, SHAPE_MAX)
+    phase = phase_of(shape_low, shape_high)
+    note = (undetermined_note(shape_low, shape_high, failures, float(entry.min()), float(exit_.max()))
+            if phase == UNDETERMINED else "")
     if not SHAPE_MIN * 1.001 < shape < SHAPE_MAX / 1.001:
         # the likelihood rises all the way to a search bound: no point estimate, only the range
         nan = float("nan")
-        return WeibullFit(nan, shape_low, shape_high, nan, nan, nan, phase_of(shape_low, shape_high), failures)
+        return WeibullFit(nan, shape_low, shape_high, nan, nan, nan, phase, failures, note)
     scale = profile.scale(shape)
     scale_low, scale_high = _log_wald(scale, scale * _log_scale_se(profile, shape, scale), norm.ppf(1 - alpha / 2))
-    return WeibullFit(shape, shape_low, shape_high, scale, scale_low, scale_high,
-                      phase_of(shape_low, shape_high), failures)
+    return WeibullFit(shape, shape_low, shape_high, scale, scale_low, scale_high, phase, failures, note)
