@@ -39,16 +39,22 @@ def store(tmp_path, monkeypatch):
                         raising=False)
     monkeypatch.setattr(triage.rules, "evaluate", _stand_in_evaluate, raising=False)
     monkeypatch.setattr(triage.survival, "latest_model", lambda store: None, raising=False)
+    s = Store(tmp_path / "store")
+    s.append("snapshots", pd.DataFrame(_nights(["=QZ-0001", "QZ-0002", "QZ-0003"], host="ash-r1-n01")))
+    return s
+
+
+def _nights(serials, host, last=None):
+    """Four nightly captures ending an hour ago (or at ``last``): fresh data, not stale."""
+    last = last if last is not None else pd.Timestamp.now(tz="UTC").floor("h") - pd.Timedelta(hours=1)
     rows = []
     for day in (1, 2, 3, 4):
-        for i, serial in enumerate(["=QZ-0001", "QZ-0002", "QZ-0003"]):
-            rows.append({"serial": serial, "model": "QH-[b]8T" if serial == "=QZ-0001" else "QH-HD8T-A", "host": "ash-r1-n01", "slot": str(i),
-                         "group": "ash-pool-1", "taken_at": pd.Timestamp(f"2026-11-{day:02d}T02:00Z"),
-                         "power_on_hours": 9000 + 24 * day,
+        for i, serial in enumerate(serials):
+            rows.append({"serial": serial, "model": "QH-[b]8T" if serial == "=QZ-0001" else "QH-HD8T-A",
+                         "host": host, "slot": str(i), "group": f"{host}-pool",
+                         "taken_at": last - pd.Timedelta(days=4 - day), "power_on_hours": 9000 + 24 * day,
                          "pending_sectors": (8 * day if serial == "=QZ-0001" else 0)})
-    s = Store(tmp_path / "store")
-    s.append("snapshots", pd.DataFrame(rows))
-    return s
+    return rows
 
 
 def _run(*args):
@@ -58,7 +64,9 @@ def _run(*args):
 def test_rank_json_lists_the_flagged_drive_first_and_says_rules_alone(store):
     result = _run("rank", "--format", "json", "--store", str(store.root))
     assert result.exit_code == 0, result.output
-    rows = json.loads(result.stdout)
+    report = json.loads(result.stdout)
+    assert report["as_of"] and report["warnings"] == [] and report["not_reporting"] == []
+    rows = report["drives"]
     assert rows[0]["serial"] == "=QZ-0001" and rows[0]["rules"] == ["pending-growth"]
     assert rows[0]["evidence"] == ["pending 8 -> 32 in 3 days"]
     assert rows[0]["p_fail"] is None
@@ -90,6 +98,7 @@ def test_tickets_writes_new_then_ongoing(store, tmp_path):
     with out.open(newline="") as fh:
         rows = list(csv.DictReader(fh))
     assert [(r["serial"], r["state"]) for r in rows] == [("'=QZ-0001", "ongoing")]
+    assert "as of" in second.stderr
 
 
 def test_nightly_refuses_to_run_while_another_holds_the_lock(store, tmp_path):
@@ -106,4 +115,4 @@ def test_nightly_reports_new_flags_and_a_summary_line(store, tmp_path):
     dumps.mkdir()
     result = _run("nightly", "--dumps", str(dumps), "--out", str(tmp_path / "t.csv"), "--store", str(store.root))
     assert result.exit_code == Exit.NEW_FLAGS, result.output
-    assert "nightly: 0 file(s) read" in result.stderr and "1 new / 0 ongoing / 0 cleared" in result.stderr
+    assert "nightly: 0 file(s) read" in result.stderr and "1 new / 0 ongoing / 0 not-reporting / 0 cleared" in result.stderr

@@ -34,7 +34,7 @@ import secrets
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import Iterable, Iterator, Mapping
 
@@ -61,6 +61,10 @@ class StoreFormatError(RuntimeError):
     """The store was written by a newer triage, or its format file is unreadable."""
 
 
+class StoreMissing(FileNotFoundError):
+    """The store named does not exist: a typo in --store must not read as an empty, healthy fleet."""
+
+
 @dataclass(frozen=True)
 class SourceRecord:
     """One input file as the manifest remembers it."""
@@ -83,6 +87,21 @@ class Store:
         self.root = Path(root)
         self._holding_lock = False
         self._format_current = False
+
+    @classmethod
+    def existing(cls, root: Path | str) -> "Store":
+        """The store at ``root``, which must already hold a committed batch (its manifest).
+
+        Every command but ``ingest`` opens the store this way: only ``ingest`` creates one, so a
+        mistyped path fails loudly instead of ranking nothing and exiting 0.
+        """
+        store = cls(root)
+        if not store.root.is_dir():
+            raise StoreMissing(f"{store.root}: no such store (check --store; only 'triage ingest' creates one)")
+        if not (store.root / MANIFEST).is_file():
+            raise StoreMissing(f"{store.root}: not a triage store (no {MANIFEST}; "
+                               "check --store, or run 'triage ingest' into it first)")
+        return store
 
     # -- places ---------------------------------------------------------------------------
     @property
@@ -326,6 +345,29 @@ class Store:
             upper = (day <= until.strftime("%Y-%m-%d")) & (stamp < pa.scalar(until, schema.field(time_column).type))
             condition = upper if condition is None else condition & upper
         return dataset.to_table(columns=wanted, filter=condition).to_pandas()
+
+    def last_rows(self, table: str, key: str, columns: list[str]) -> pd.DataFrame:
+        """The newest row of every ``key`` value over the table's whole history (``columns`` only).
+
+        Walks the day partitions newest first and keeps only keys not seen yet, so memory stays
+        at about one day of rows however long the history is.
+        """
+        _, time_column, _ = TABLES[table]
+        wanted = list(dict.fromkeys([key, time_column, *columns]))
+        seen: set = set()
+        parts = []
+        for day in reversed(self.days(table)):
+            start = datetime.strptime(day, "%Y-%m-%d").replace(tzinfo=timezone.utc)
+            rows = self.read(table, columns=wanted, since=start, until=start + timedelta(days=1))
+            rows = rows[~rows[key].isin(seen)]
+            if rows.empty:
+                continue
+            newest = rows.sort_values(time_column).groupby(key, as_index=False).last()
+            seen.update(newest[key])
+            parts.append(newest)
+        if not parts:
+            return self.read(table, columns=wanted).iloc[0:0]
+        return pd.concat(parts, ignore_index=True)[wanted]
 
     def days(self, table: str) -> list[str]:
         """The day partitions present, oldest first."""
