@@ -16,7 +16,7 @@ from triage.exitcodes import Exit
     epilog="Example: triage ingest /srv/captures/2026-11-30 --store /srv/triage/store",
 )
 def ingest(
-    paths: list[Path] = typer.Argument(..., metavar="PATH...", help="Capture files (.jsonl, .jsonl.gz), removal logs (.csv), or folders of them."),
+    paths: list[Path] = typer.Argument(..., metavar="PATH", help="Capture files (.jsonl, .jsonl.gz), removal logs (.csv), or folders of them."),
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Store capture files and removal logs; bad lines go to quarantine with a reason."""
@@ -53,7 +53,7 @@ def ingest(
 )
 def capture(
     devices: Optional[list[str]] = typer.Argument(
-        None, metavar="[DEVICE]...", help="Device nodes to read, e.g. /dev/sda /dev/nvme0 (default: every local SATA and NVMe drive in sysfs)."
+        None, metavar="DEVICE", help="Device nodes to read, e.g. /dev/sda /dev/nvme0 (default: every local SATA and NVMe drive in sysfs)."
     ),
     out: Path = typer.Option(Path("."), "--out", metavar="DIR", help="Existing folder for <host>-<YYYY-MM-DD>.jsonl.gz."),
     group_map: Optional[Path] = typer.Option(

@@ -9,6 +9,10 @@ import typer
 
 from triage.cli.common import OutputFormat, StoreOption, Tier, app, fail, format_option, open_store
 from triage.exitcodes import Exit
+from triage.risk.score import TIERS
+
+#: Typer would print a repeatable choice as "<list[...]>"; the same choices, without the type name.
+_TIER_CHOICES = "<" + "|".join(TIERS) + ">"
 
 
 def _print_cautions(result) -> None:
@@ -82,7 +86,7 @@ def rank(
     host: Optional[list[str]] = typer.Option(None, "--host", metavar="PATTERN", help="Host name pattern (fnmatch, repeatable)."),
     site: Optional[list[str]] = typer.Option(None, "--site", metavar="PATTERN", help="Site pattern: host name up to its first '-' (repeatable)."),
     group: Optional[list[str]] = typer.Option(None, "--group", metavar="PATTERN", help="Redundancy group pattern (repeatable)."),
-    severity: Optional[list[Tier]] = typer.Option(None, "--severity", case_sensitive=False,
+    severity: Optional[list[Tier]] = typer.Option(None, "--severity", case_sensitive=False, metavar=_TIER_CHOICES,
                                                   help="Only this action tier (repeatable)."),
     fmt: OutputFormat = format_option(),
     tickets: Optional[Path] = typer.Option(None, "--tickets", metavar="FILE",

@@ -7,16 +7,16 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import StoreOption, app, fail, open_store
+from triage.cli.common import OutputFormat, StoreOption, app, fail, format_option, open_store
 from triage.exitcodes import Exit
 
 
 # -- survival: fit, cohorts, survival (triage/survival, triage/report/survival.py, docs/survival.md) --
-ByOption = typer.Option("model", "--by", help="Cohort keys, comma-separated, among model, firmware, bus, user_capacity_bytes.")
+ByOption = typer.Option("model", "--by", metavar="KEYS", help="Cohort keys, comma-separated, among model, firmware, bus, user_capacity_bytes.")
 ProactiveOption = typer.Option(
     True, "--count-proactive/--proactive-censored",
     help="Count drives pulled on a warning ('proactive') as failures (default), or as censored.")
-MttfOption = typer.Option(None, "--mttf", min=1.0, help="Datasheet MTTF in hours: show the AFR it implies.")
+MttfOption = typer.Option(None, "--mttf", min=1.0, metavar="HOURS", help="Datasheet MTTF in hours: show the AFR it implies.")
 
 
 def _survival_call(function, *args, **kwargs):
@@ -46,10 +46,10 @@ def _survival_notes(exclusions) -> None:
 
 @app.command(epilog="Example: triage fit --horizon-days 30 --by model --store /srv/triage/store")
 def fit(
-    horizon_days: float = typer.Option(30.0, "--horizon-days", min=1.0, help="Predict failure within this many days."),
+    horizon_days: float = typer.Option(30.0, "--horizon-days", min=1.0, metavar="DAYS", help="Predict failure within this many days."),
     by: str = ByOption,
     count_proactive: bool = ProactiveOption,
-    fmt: str = typer.Option("table", "--format", help="table | json (summary of the fitted model)."),
+    fmt: OutputFormat = format_option("CSV: the covariate hazard ratios; JSON: the whole summary"),
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Fit the fleet risk model (AFR, Weibull, stratified Cox) and save it under <store>/models."""
@@ -57,8 +57,6 @@ def fit(
     from triage.report.survival import render_fit
     from triage.survival.run import fit_store
 
-    if fmt not in ("table", "json"):
-        fail(f"--format must be table or json, not {fmt!r}", Exit.USAGE)
     target = open_store(store)
     with progress_bar("reading snapshots") as update:
         model, path = _survival_call(fit_store, target, horizon_days=horizon_days, by=by,
@@ -71,7 +69,7 @@ def fit(
 @app.command(epilog="Example: triage cohorts --by model,firmware --format csv --mttf 2500000")
 def cohorts(
     by: str = ByOption,
-    fmt: str = typer.Option("table", "--format", help="table | csv | json"),
+    fmt: OutputFormat = format_option(),
     mttf: Optional[float] = MttfOption,
     count_proactive: bool = ProactiveOption,
     store: Optional[Path] = StoreOption,
@@ -81,10 +79,9 @@ def cohorts(
     from triage.report.survival import render_cohorts
     from triage.survival.run import cohorts_of_store
 
-    if fmt not in ("table", "csv", "json"):
-        fail(f"--format must be table, csv or json, not {fmt!r}", Exit.USAGE)
+    target = open_store(store)
     with progress_bar("reading snapshots") as update:
-        table, obs = _survival_call(cohorts_of_store, open_store(store), by=by,
+        table, obs = _survival_call(cohorts_of_store, target, by=by,
                                     count_proactive=count_proactive, mttf_hours=mttf, progress=update)
     _survival_notes(obs.exclusions)
     render_cohorts(table, fmt)
@@ -92,10 +89,10 @@ def cohorts(
 
 @app.command(epilog="Example: triage survival 'QH-HD8T-A' --plot qh-hd8t-a.png --mttf 2500000")
 def survival(
-    cohort: str = typer.Argument(..., help="Cohort label as 'triage cohorts' prints it (same --by)."),
+    cohort: str = typer.Argument(..., metavar="COHORT", help="Cohort label as 'triage cohorts' prints it (same --by)."),
     by: str = ByOption,
-    fmt: str = typer.Option("table", "--format", help="table | json"),
-    plot: Optional[Path] = typer.Option(None, "--plot", help="Also draw Kaplan-Meier with band and Weibull fit (.png or .svg)."),
+    fmt: OutputFormat = format_option("CSV: the survival curve; JSON: everything"),
+    plot: Optional[Path] = typer.Option(None, "--plot", metavar="FILE", help="Also draw Kaplan-Meier with band and Weibull fit (.png or .svg)."),
     mttf: Optional[float] = MttfOption,
     count_proactive: bool = ProactiveOption,
     store: Optional[Path] = StoreOption,
@@ -105,8 +102,6 @@ def survival(
     from triage.report.survival import plot_survival, render_survival
     from triage.survival.run import survival_of_store
 
-    if fmt not in ("table", "json"):
-        fail(f"--format must be table or json, not {fmt!r}", Exit.USAGE)
     if plot is not None and plot.suffix.lower() not in (".png", ".svg"):
         fail(f"{plot}: --plot must name a .png or .svg file", Exit.USAGE)
     with progress_bar("reading snapshots") as update:

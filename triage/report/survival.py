@@ -58,15 +58,20 @@ def _write_json(obj, out: TextIO) -> None:
 
 # -- triage cohorts ---------------------------------------------------------------------------
 
+def _write_csv(table: pd.DataFrame, out: TextIO) -> None:
+    writer = csv.writer(out, lineterminator="\r\n")  # RFC 4180 records end in CRLF
+    writer.writerow(table.columns)
+    for row in _records(table):
+        writer.writerow(["" if v is None else v for v in row.values()])
+
+
 def render_cohorts(table: pd.DataFrame, fmt: str, out: TextIO | None = None) -> None:
     out = out or sys.stdout
+    fmt = getattr(fmt, "value", fmt)
     if fmt == "json":
         _write_json(_records(table), out)
     elif fmt == "csv":
-        writer = csv.writer(out, lineterminator="\r\n")  # RFC 4180 records end in CRLF
-        writer.writerow(table.columns)
-        for row in _records(table):
-            writer.writerow(["" if v is None else v for v in row.values()])
+        _write_csv(table, out)
     else:
         _cohort_table(table)
 
@@ -132,9 +137,14 @@ def survival_record(report) -> dict:
 
 
 def render_survival(report, fmt: str, out: TextIO | None = None) -> None:
+    """Table, JSON (everything), or CSV (the survival curve, one row per failure age)."""
     out = out or sys.stdout
+    fmt = getattr(fmt, "value", fmt)
     if fmt == "json":
         _write_json(survival_record(report), out)
+        return
+    if fmt == "csv":
+        _write_csv(report.curves.table, out)
         return
     console = _console()
     w = report.weibull
@@ -231,9 +241,14 @@ def fit_record(model, path: Path) -> dict:
 
 
 def render_fit(model, path: Path, fmt: str, out: TextIO | None = None) -> None:
+    """Table, JSON (everything), or CSV (the covariate hazard ratios)."""
     out = out or sys.stdout
+    fmt = getattr(fmt, "value", fmt)
     if fmt == "json":
         _write_json(fit_record(model, path), out)
+        return
+    if fmt == "csv":
+        _write_csv(model.coefficients().reset_index(names="covariate"), out)
         return
     console = _console()
     window = model.data_window_
