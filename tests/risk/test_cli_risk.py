@@ -116,3 +116,91 @@ def test_nightly_reports_new_flags_and_a_summary_line(store, tmp_path):
     result = _run("nightly", "--dumps", str(dumps), "--out", str(tmp_path / "t.csv"), "--store", str(store.root))
     assert result.exit_code == Exit.NEW_FLAGS, result.output
     assert "nightly: 0 file(s) read" in result.stderr and "1 new / 0 ongoing / 0 not-reporting / 0 cleared" in result.stderr
+
+
+@pytest.mark.parametrize("command", [
+    ["rank"], ["tickets", "--out", "t.csv"], ["nightly", "--dumps", "."], ["cohorts"], ["fit"],
+    ["survival", "QH-HD8T-A"],
+])
+def test_a_store_that_does_not_exist_is_an_error_not_an_empty_fleet(tmp_path, command, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    result = _run(*command, "--store", str(tmp_path / "stroe"))
+    assert result.exit_code == Exit.FAILURE
+    assert f"{tmp_path / 'stroe'}: no such store" in result.stderr
+    assert not (tmp_path / "stroe").exists() and not (tmp_path / "t.csv").exists()
+
+
+def test_a_folder_that_is_not_a_store_is_an_error_too(tmp_path):
+    result = _run("rank", "--store", str(tmp_path))
+    assert result.exit_code == Exit.FAILURE and "not a triage store" in result.stderr
+
+
+def test_a_host_that_stopped_reporting_is_news_and_its_ticket_stays_open(store, tmp_path):
+    out = tmp_path / "tickets.csv"
+    assert _run("tickets", "--out", str(out), "--store", str(store.root)).exit_code == Exit.NEW_FLAGS
+    # three nights on, site birch reports and site ash (which holds the flagged drive) has been silent
+    later = pd.Timestamp.now(tz="UTC").floor("h") + pd.Timedelta(days=3)
+    store.append("snapshots", pd.DataFrame(_nights(["QZ-0101", "QZ-0102"], host="birch-r1-n01", last=later)))
+    result = _run("rank", "--format", "json", "--tickets", str(out), "--store", str(store.root))
+    assert result.exit_code == Exit.NOT_REPORTING, result.output
+    report = json.loads(result.stdout)
+    assert {r["serial"] for r in report["not_reporting"]} == {"=QZ-0001", "QZ-0002", "QZ-0003"}
+    assert all(r["last_seen"] for r in report["not_reporting"])
+    assert any(w.startswith("not reporting: site ash (1 host(s), 3 drive(s)), last seen") for w in report["warnings"])
+    assert [d["serial"] for d in report["drives"]] == ["QZ-0101", "QZ-0102"]
+    tickets = _run("tickets", "--out", str(out), "--store", str(store.root))
+    assert tickets.exit_code == Exit.NOT_REPORTING
+    with out.open(newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert [(r["serial"], r["state"]) for r in rows] == [("'=QZ-0001", "not-reporting")]
+    assert rows[0]["last_seen"]
+
+
+def test_stale_data_warns_with_its_time_and_exits_not_reporting(store):
+    result = _run("rank", "--stale-hours", "1", "--store", str(store.root))
+    assert result.exit_code == Exit.NOT_REPORTING
+    assert "h old (as of" in result.stderr and "as of" in result.stdout
+
+
+def test_rank_states_new_then_ongoing_against_the_ticket_export(store, tmp_path):
+    out = tmp_path / "tickets.csv"
+    _run("tickets", "--out", str(out), "--store", str(store.root))
+    result = _run("rank", "--format", "csv", "--tickets", str(out), "--store", str(store.root))
+    assert result.exit_code == Exit.OK, result.output
+    rows = list(csv.DictReader(result.stdout.splitlines()))
+    first = rows[0]
+    assert first["serial"] == "'=QZ-0001" and first["state"] == "new" and first["first_raised"]
+    assert first["as_of"] and first["severity"] == "replace-now" and first["score"]
+
+
+def test_nightly_summary_file_names_every_outcome_and_the_worst_wins(store, tmp_path):
+    dumps = tmp_path / "dumps"
+    dumps.mkdir()
+    (dumps / "ash-r1-n01-2026-11-30.jsonl").write_text("this is not a capture\n")
+    summary = tmp_path / "nightly.json"
+    result = _run("nightly", "--dumps", str(dumps), "--out", str(tmp_path / "t.csv"), "--summary", str(summary),
+                  "--store", str(store.root))
+    record = json.loads(summary.read_text())
+    # quarantined input outranks new flags (exitcodes.PRECEDENCE); the file names both
+    assert result.exit_code == Exit.INPUT_REJECTED, result.output
+    assert record["outcomes"] == ["INPUT_REJECTED", "NEW_FLAGS"] and record["exit"] == 3
+    assert record["quarantined"] == 1 and record["tickets"]["new"] == 1 and record["as_of"]
+    assert "1 line(s) quarantined" in result.stderr
+
+
+@pytest.mark.parametrize("command", [["rank"], ["cohorts"], ["fit"], ["survival", "x"],
+                                     ["rules", "list"], ["demo"]])
+def test_every_table_command_takes_the_same_format_choices(command):
+    help_text = _run(*command, "--help").stdout
+    assert "--format <table|csv|json>" in help_text
+    refused = _run(*command, "--format", "xml")
+    assert refused.exit_code == Exit.USAGE and "'xml' is not one of" in refused.stderr
+
+
+@pytest.mark.parametrize("command", [["ingest"], ["capture"], ["demo"], ["fit"], ["cohorts"], ["survival"],
+                                     ["rank"], ["tickets"], ["nightly"], ["rules", "check"], ["rules", "list"]])
+def test_help_shows_no_python_type_names(command):
+    import re
+
+    help_text = _run(*command, "--help").stdout
+    assert not re.search(r"\b(INTEGER|TEXT|PATH|FLOAT|BOOLEAN)\b|list\[|<str>|<int>|<float>|<Path>", help_text), help_text

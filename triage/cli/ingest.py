@@ -16,7 +16,7 @@ from triage.exitcodes import Exit
     epilog="Example: triage ingest /srv/captures/2026-11-30 --store /srv/triage/store",
 )
 def ingest(
-    paths: list[Path] = typer.Argument(..., metavar="PATH", help="Capture files (.jsonl, .jsonl.gz), removal logs (.csv), or folders of them."),
+    paths: list[Path] = typer.Argument(..., metavar="INPUT", help="Capture files (.jsonl, .jsonl.gz), removal logs (.csv), or folders of them."),
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Store capture files and removal logs; bad lines go to quarantine with a reason."""
