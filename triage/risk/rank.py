@@ -283,15 +283,23 @@ def rank_store(
         return RankResult(empty, pd.DataFrame(), model is not None, getattr(model, "horizon_days", None), None,
                           notes + ["the store holds no captures yet"])
     newest = datetime.strptime(days[-1], "%Y-%m-%d").replace(tzinfo=timezone.utc)
-    lookback = max(int(getattr(ruleset, "window_days", 0) or 0), GROUP_LOOKBACK_DAYS)
+    # enough history for the rules, for a missing group member, and to see every drive that
+    # reported within ``silent_hours``
+    lookback = max(int(getattr(ruleset, "window_days", 0) or 0), GROUP_LOOKBACK_DAYS, int(silent_hours // 24) + 1)
     history = store.read("snapshots", since=newest - timedelta(days=lookback))
     removals = store.read("removals")
     as_of = history["taken_at"].max().to_pydatetime()
 
-    sightings = store.last_rows("snapshots", "serial", ["model", "host", "slot", "group"])
-    removed = frozenset(removals["serial"]) if len(removals) else frozenset()
-    silent = silent_drives(sightings, removals, as_of, silent_hours)
+    # each drive's last sighting: recent ones from the history read above, older ones from the store
+    detail = ["serial", "taken_at", "model", "host", "slot", "group"]
     latest = history.sort_values("taken_at").groupby("serial", as_index=False).last()
+    recent = latest[detail]
+    removed = frozenset(removals["serial"]) if len(removals) else frozenset()
+    last_seen = store.last_times("snapshots", "serial")
+    older = last_seen[~last_seen["serial"].isin(set(recent["serial"]) | removed)]  # removed: never silent
+    sightings = pd.concat([recent, store.last_rows("snapshots", "serial", detail[2:], last=older)],
+                          ignore_index=True)
+    silent = silent_drives(sightings, removals, as_of, silent_hours)
     lost = lost_members(history, removals)
     gone = set(lost["serial"]) | set(silent["serial"])
     if len(removals):

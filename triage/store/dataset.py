@@ -346,28 +346,37 @@ class Store:
             condition = upper if condition is None else condition & upper
         return dataset.to_table(columns=wanted, filter=condition).to_pandas()
 
-    def last_rows(self, table: str, key: str, columns: list[str]) -> pd.DataFrame:
-        """The newest row of every ``key`` value over the table's whole history (``columns`` only).
+    def last_times(self, table: str, key: str) -> pd.DataFrame:
+        """The newest time of every ``key`` value over the table's whole history (two columns read)."""
+        schema, time_column, _ = TABLES[table]
+        root = self.table_dir(table)
+        if not root.is_dir():
+            return schema.empty_table().select([key, time_column]).to_pandas()
+        full = schema.append(pa.field(PARTITION_COLUMN, pa.string()))
+        rows = ds.dataset(root, schema=full, format="parquet", partitioning=PARTITIONING).to_table(
+            columns=[key, time_column])
+        newest = rows.group_by(key).aggregate([(time_column, "max")])
+        return newest.rename_columns([key, time_column]).to_pandas()
 
-        Walks the day partitions newest first and keeps only keys not seen yet, so memory stays
-        at about one day of rows however long the history is.
+    def last_rows(self, table: str, key: str, columns: list[str], last: pd.DataFrame | None = None) -> pd.DataFrame:
+        """The newest row of each ``key`` value, ``columns`` only.
+
+        ``last``: the rows of ``last_times`` wanted (default: every key). Only the days on which
+        those keys were last seen are opened.
         """
         _, time_column, _ = TABLES[table]
         wanted = list(dict.fromkeys([key, time_column, *columns]))
-        seen: set = set()
+        if last is None:
+            last = self.last_times(table, key)
         parts = []
-        for day in reversed(self.days(table)):
+        for day, part in last.groupby(last[time_column].dt.strftime("%Y-%m-%d")):
             start = datetime.strptime(day, "%Y-%m-%d").replace(tzinfo=timezone.utc)
             rows = self.read(table, columns=wanted, since=start, until=start + timedelta(days=1))
-            rows = rows[~rows[key].isin(seen)]
-            if rows.empty:
-                continue
-            newest = rows.sort_values(time_column).groupby(key, as_index=False).last()
-            seen.update(newest[key])
-            parts.append(newest)
+            parts.append(rows.merge(part, on=[key, time_column]))
         if not parts:
             return self.read(table, columns=wanted).iloc[0:0]
-        return pd.concat(parts, ignore_index=True)[wanted]
+        rows = pd.concat(parts, ignore_index=True)
+        return rows.drop_duplicates(subset=[key], keep="last")[wanted].reset_index(drop=True)
 
     def days(self, table: str) -> list[str]:
         """The day partitions present, oldest first."""
