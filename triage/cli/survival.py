@@ -37,9 +37,12 @@ def _survival_call(function, *args, **kwargs):
         fail(str(exc), Exit.FAILURE)
 
 
-def _survival_notes(exclusions) -> None:
+def _survival_notes(exclusions, as_of=None, command: str = "") -> None:
     from triage.report.survival import exclusion_lines
+    from triage.risk.score import moment_text
 
+    if command:
+        typer.echo(f"{command}: as of {moment_text(as_of)} (newest capture used)", err=True)
     for line in exclusion_lines(exclusions):
         typer.echo(line, err=True)
 
@@ -83,7 +86,7 @@ def cohorts(
     with progress_bar("reading snapshots") as update:
         table, obs = _survival_call(cohorts_of_store, target, by=by,
                                     count_proactive=count_proactive, mttf_hours=mttf, progress=update)
-    _survival_notes(obs.exclusions)
+    _survival_notes(obs.exclusions, obs.as_of, "cohorts")
     render_cohorts(table, fmt)
 
 
@@ -107,7 +110,7 @@ def survival(
     with progress_bar("reading snapshots") as update:
         report, obs = _survival_call(survival_of_store, open_store(store), cohort, by=by,
                                      count_proactive=count_proactive, mttf_hours=mttf, progress=update)
-    _survival_notes(obs.exclusions)
+    _survival_notes(obs.exclusions, obs.as_of, "survival")
     render_survival(report, fmt)
     if plot is not None:
         _survival_call(plot_survival, report, plot)
