@@ -6,6 +6,7 @@ import csv
 import io
 import json
 
+import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
@@ -124,7 +125,17 @@ def test_fit_saves_a_model_that_latest_model_finds(store_root):
 
 
 def test_empty_store_is_a_clear_failure(tmp_path):
+    # a store holding only a removal log: it exists, but there is nothing to estimate from
+    Store(tmp_path).append("removals", pd.DataFrame({
+        "serial": ["QS1"], "removed_at": pd.to_datetime(["2026-11-01T02:00Z"]), "reason": ["failed"]}))
     for command in (["cohorts"], ["survival", "QH-HD8T-A"], ["fit"]):
         result = run(*command, "--store", str(tmp_path))
         assert result.exit_code == Exit.FAILURE
         assert "no snapshots stored" in result.output
+
+
+def test_a_folder_that_is_not_a_store_is_a_clear_failure(tmp_path):
+    for command in (["cohorts"], ["survival", "QH-HD8T-A"], ["fit"]):
+        result = run(*command, "--store", str(tmp_path))
+        assert result.exit_code == Exit.FAILURE
+        assert "not a triage store" in result.output
