@@ -198,7 +198,7 @@ def _first_in_degraded_group(drives: pd.DataFrame, groups: pd.DataFrame) -> tupl
         if len(part) < 2:
             continue
         part = part.sort_values(["p_member", "score", "serial"], ascending=[False, False, True])
-        shares = ", ".join(f"{s} {p:.0%}" for s, p in zip(part["serial"], part["p_member"]))
+        shares = ", ".join(f"{s} {p:.1%}" for s, p in zip(part["serial"], part["p_member"]))
         for position, index in enumerate(part.index, start=1):
             positions[index] = position
             notes[index] = (f"at-risk member {position} of {len(part)} in {group}, in the order to deal with them "

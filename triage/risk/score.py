@@ -122,7 +122,9 @@ def degraded_caution(group: str, lost: pd.DataFrame | None = None, n_lost: int =
 
 def action_text(actions: list[str], caution: str | None = None) -> str:
     """One line: the caution first when the drive's group is degraded, then the actions in order."""
-    text = "; then ".join(actions) if actions else "no action"
+    if not actions:
+        return caution or "no action"
+    text = "; then ".join(actions)
     return f"{caution}; then: {text}" if caution else text
 
 
