@@ -159,6 +159,8 @@ def rank_drives(
                                ascending=[True, False, False, True, True], kind="stable")
     drives = drives.reset_index(drop=True)
     drives["rank"] = range(1, len(drives) + 1)
+    drives["group_first"] = pd.Series([None if pd.isna(x) else int(x) for x in drives["group_first"]],
+                                      index=drives.index, dtype=object)
     return drives[RANK_COLUMNS], groups
 
 
