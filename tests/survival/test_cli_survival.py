@@ -139,3 +139,20 @@ def test_a_folder_that_is_not_a_store_is_a_clear_failure(tmp_path):
         result = run(*command, "--store", str(tmp_path))
         assert result.exit_code == Exit.FAILURE
         assert "not a triage store" in result.output
+
+
+def test_cohorts_state_the_newest_capture_and_warn_when_it_is_stale(store_root):
+    result = run("cohorts", "--stale-hours", "1", "--store", str(store_root))
+    assert result.exit_code == Exit.OK, result.output
+    newest = Store(store_root).read("snapshots", columns=["taken_at"])["taken_at"].max()
+    assert f"cohorts: as of {newest:%Y-%m-%d %H:%M} UTC" in result.stderr
+    assert "warning: the newest capture is" in result.stderr
+
+
+def test_survival_writes_its_curve_as_csv_too(store_root):
+    curve = run("survival", "QH-HD8T-A", "--format", "csv", "--store", str(store_root))
+    assert curve.exit_code == Exit.OK, curve.output
+    text = curve.stdout_bytes.decode()  # raw bytes: the runner's .stdout folds CRLF to LF
+    assert text.endswith("\r\n")  # RFC 4180 section 2: CRLF line breaks
+    rows = list(csv.DictReader(io.StringIO(text, newline="")))
+    assert rows and {"age_hours", "survival", "at_risk"} <= set(rows[0])

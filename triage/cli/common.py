@@ -56,6 +56,12 @@ StoreOption = typer.Option(
 )
 
 
+StaleOption = typer.Option(
+    36.0, "--stale-hours", min=1.0, metavar="HOURS",
+    help="Warn when the newest capture is older than this (rank, tickets and nightly also exit 8, and "
+         "call drives silent this long against the newest capture 'not reporting').")
+
+
 def _version(value: bool) -> None:
     if value:
         typer.echo(f"triage {__version__}")

@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import OutputFormat, StoreOption, Tier, app, fail, format_option, open_store
+from triage.cli.common import OutputFormat, StaleOption, StoreOption, Tier, app, fail, format_option, open_store
 from triage.exitcodes import Exit
 from triage.risk.score import TIERS
 
@@ -35,10 +35,6 @@ RulesOption = typer.Option(None, "--rules", metavar="DIR",
 NoDefaultRulesOption = typer.Option(False, "--no-default-rules", help="Use only the rule folders given.")
 GroupConfigOption = typer.Option(None, "--group-config", metavar="FILE",
                                  help="Group tolerance file (groups.toml format).")
-StaleOption = typer.Option(
-    36.0, "--stale-hours", min=1.0, metavar="HOURS",
-    help="Warn, and exit 8, when the newest capture is older than this; drives silent this long "
-         "(against the newest capture) are 'not reporting'.")
 MinSeverityOption = typer.Option(
     None, "--min-severity", case_sensitive=False,
     help="Leave drives below this action tier out of new tickets (tiers in order of urgency); "

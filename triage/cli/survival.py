@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import OutputFormat, StoreOption, app, fail, format_option, open_store
+from triage.cli.common import OutputFormat, StaleOption, StoreOption, app, fail, format_option, open_store
 from triage.exitcodes import Exit
 
 
@@ -37,12 +37,16 @@ def _survival_call(function, *args, **kwargs):
         fail(str(exc), Exit.FAILURE)
 
 
-def _survival_notes(exclusions, as_of=None, command: str = "") -> None:
+def _survival_notes(exclusions, as_of=None, command: str = "", stale_hours: float | None = None) -> None:
     from triage.report.survival import exclusion_lines
+    from triage.risk.rank import stale_warning
     from triage.risk.score import moment_text
 
     if command:
         typer.echo(f"{command}: as of {moment_text(as_of)} (newest capture used)", err=True)
+        warning = stale_warning(as_of, stale_hours=stale_hours)
+        if warning:
+            typer.echo(f"warning: {warning}", err=True)
     for line in exclusion_lines(exclusions):
         typer.echo(line, err=True)
 
@@ -75,6 +79,7 @@ def cohorts(
     fmt: OutputFormat = format_option(),
     mttf: Optional[float] = MttfOption,
     count_proactive: bool = ProactiveOption,
+    stale_hours: float = StaleOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
     """One row per cohort: AFR with exact 95 % limits, life phase and Weibull shape, then drives, drive-days, failures."""
@@ -86,7 +91,7 @@ def cohorts(
     with progress_bar("reading snapshots") as update:
         table, obs = _survival_call(cohorts_of_store, target, by=by,
                                     count_proactive=count_proactive, mttf_hours=mttf, progress=update)
-    _survival_notes(obs.exclusions, obs.as_of, "cohorts")
+    _survival_notes(obs.exclusions, obs.as_of, "cohorts", stale_hours)
     render_cohorts(table, fmt)
 
 
@@ -98,6 +103,7 @@ def survival(
     plot: Optional[Path] = typer.Option(None, "--plot", metavar="FILE", help="Also draw Kaplan-Meier with band and Weibull fit (.png or .svg)."),
     mttf: Optional[float] = MttfOption,
     count_proactive: bool = ProactiveOption,
+    stale_hours: float = StaleOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Survival and cumulative hazard by age (delayed entry), hazard by age band, Weibull fit of one cohort."""
@@ -110,7 +116,7 @@ def survival(
     with progress_bar("reading snapshots") as update:
         report, obs = _survival_call(survival_of_store, open_store(store), cohort, by=by,
                                      count_proactive=count_proactive, mttf_hours=mttf, progress=update)
-    _survival_notes(obs.exclusions, obs.as_of, "survival")
+    _survival_notes(obs.exclusions, obs.as_of, "survival", stale_hours)
     render_survival(report, fmt)
     if plot is not None:
         _survival_call(plot_survival, report, plot)

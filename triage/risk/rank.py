@@ -384,6 +384,16 @@ def data_age_hours(as_of: datetime | None, now: datetime | None = None) -> float
     return (pd.Timestamp(now) - pd.Timestamp(as_of)).total_seconds() / 3600.0
 
 
+def stale_warning(as_of: datetime | None, *, now: datetime | None = None,
+                  stale_hours: float | None = STALE_HOURS) -> str | None:
+    """A warning when the newest capture is older than ``stale_hours`` (None: not checked)."""
+    age = data_age_hours(as_of, now)
+    if stale_hours is None or age is None or age <= stale_hours:
+        return None
+    return (f"the newest capture is {age:.0f} h old (as of {moment_text(as_of)}; limit {stale_hours:g} h): "
+            "captures may have stopped arriving")
+
+
 def silence_warnings(result: RankResult, *, now: datetime | None = None,
                      stale_hours: float | None = STALE_HOURS) -> list[str]:
     """What the report cannot see: no capture at all, a newest capture older than ``stale_hours``
@@ -391,11 +401,8 @@ def silence_warnings(result: RankResult, *, now: datetime | None = None,
     otherwise the run's exit code is Exit.NOT_REPORTING."""
     if result.as_of is None:
         return ["no capture in the store at all: nothing is reporting"]
-    lines = []
-    age = data_age_hours(result.as_of, now)
-    if stale_hours is not None and age is not None and age > stale_hours:
-        lines.append(f"the newest capture is {age:.0f} h old (as of {moment_text(result.as_of)}; limit {stale_hours:g} h): "
-                     "captures may have stopped arriving")
+    stale = stale_warning(result.as_of, now=now, stale_hours=stale_hours)
+    lines = [stale] if stale else []
     for row in result.not_reporting.itertuples(index=False):
         size = (f"{row.hosts} host(s), {row.drives} drive(s)" if row.scope == "site"
                 else f"{row.drives} drive(s)" if row.scope == "host" else "")
