@@ -145,7 +145,12 @@ def test_a_host_that_stopped_reporting_is_news_and_its_ticket_stays_open(store, 
     assert result.exit_code == Exit.NOT_REPORTING, result.output
     report = json.loads(result.stdout)
     assert {r["serial"] for r in report["not_reporting"]} == {"=QZ-0001", "QZ-0002", "QZ-0003"}
-    assert all(r["last_seen"] for r in report["not_reporting"])
+    assert all(r["last_seen"] and r["state"] == "not-reporting" for r in report["not_reporting"])
+    # the flag the silent drive had open in the ticket export, and since when
+    [flagged] = [r for r in report["not_reporting"] if r["severity"]]
+    assert flagged["serial"] == "=QZ-0001" and flagged["severity"] == "replace-now" and flagged["first_raised"]
+    table = _run("rank", "--tickets", str(out), "--store", str(store.root))
+    assert "not reporting, flagged before: =QZ-0001" in table.stdout
     assert any(w.startswith("not reporting: site ash (1 host(s), 3 drive(s)), last seen") for w in report["warnings"])
     assert [d["serial"] for d in report["drives"]] == ["QZ-0101", "QZ-0102"]
     tickets = _run("tickets", "--out", str(out), "--store", str(store.root))

@@ -26,7 +26,7 @@ JSON_FIELDS = ["rank", "state", "first_raised", "severity", "score", "p_fail", "
 CSV_FIELDS = ["rank", "state", "first_raised", "severity", "score", "p_fail", "serial", "model", "host",
               "slot", "group", "category", "action", "rules", "evidence", "power_on_hours", "p_group_loss",
               "degraded", "last_seen", "as_of"]
-SILENT_FIELDS = ["serial", "model", "host", "slot", "group", "last_seen"]
+SILENT_FIELDS = ["state", "severity", "first_raised", "serial", "model", "host", "slot", "group", "last_seen"]
 GROUP_FIELDS = ["group", "members", "lost", "tolerance", "tolerance_left", "p_group_loss", "lost_serials",
                 "lost_last_seen", "caution"]
 _STYLE = {"replace-now": "bold red", "replace-soon": "yellow", "watch": "cyan", "check-path": "magenta"}
@@ -78,7 +78,7 @@ def render_csv(result, drives: pd.DataFrame, out: TextIO | None = None) -> None:
     writer = csv.writer(out, quoting=csv.QUOTE_MINIMAL, lineterminator="\r\n")
     writer.writerow(CSV_FIELDS)
     rows = [dict(rec, as_of=as_of) for rec in records(drives, JSON_FIELDS)]
-    rows += [dict(rec, state="not-reporting", as_of=as_of) for rec in records(result.silent, SILENT_FIELDS)]
+    rows += [dict(rec, as_of=as_of) for rec in records(result.silent, SILENT_FIELDS)]
     for rec in rows:
         cells = [rec.get(f) for f in CSV_FIELDS]
         cells = [" ".join(v) if f == "rules" and v else "; ".join(v) if f == "evidence" and v else v
@@ -144,6 +144,11 @@ def render_table(result, drives: pd.DataFrame, warnings: list[str]) -> None:
     console.print(table)
     if warnings:
         console.print("\n".join(f"[bold red]warning:[/] {escape(line)}" for line in warnings))
+    flagged = result.silent[result.silent["severity"].notna()] if len(result.silent) else result.silent
+    for d in flagged.itertuples(index=False):
+        console.print(f"[bold red]not reporting, flagged before:[/] {escape(str(d.serial))} at "
+                      f"{escape(str(d.host or '?'))}/{escape(str(d.slot or '?'))}: {escape(str(d.severity))} "
+                      f"since {d.first_raised}, last seen {moment_text(d.last_seen)}")
 
 
 def render_ranked(result, drives: pd.DataFrame, fmt: str, warnings: list[str] = ()) -> None:

@@ -48,6 +48,9 @@ RANK_COLUMNS = [
     "taken_at",
 ]
 SILENT_COLUMNS = ["serial", "model", "host", "slot", "group", "last_seen"]
+#: Silent drives as reported: with ``state`` not-reporting and, given a ticket export, the flag
+#: each had open (``severity``, ``first_raised``).
+SILENT_REPORT_COLUMNS = SILENT_COLUMNS + ["state", "severity", "first_raised"]
 NOT_REPORTING_COLUMNS = ["scope", "name", "hosts", "drives", "last_seen"]
 _FLAG_COLUMNS = ["serial", "severity", "category", "categories", "actions", "rules", "evidence"]
 
@@ -60,7 +63,7 @@ class RankResult:
     horizon_days: float | None
     as_of: datetime | None  # the newest capture used
     notes: list[str] = field(default_factory=list)
-    silent: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=SILENT_COLUMNS))
+    silent: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=SILENT_REPORT_COLUMNS))
     not_reporting: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=NOT_REPORTING_COLUMNS))
     removed: frozenset = frozenset()  # serials in the removal log
 
@@ -272,7 +275,12 @@ def rank_store(
     A drive whose newest capture is more than ``silent_hours`` older than the fleet's newest is not
     ranked: it is "not reporting" until it reports again, is removed, or another drive takes its slot.
     """
-    from triage.risk.tickets import flag_states, read_tickets  # noqa: PLC0415  (same layer)
+    from triage.risk.tickets import (  # noqa: PLC0415  (same layer)
+        TICKET_COLUMNS,
+        flag_states,
+        read_tickets,
+        silent_flags,
+    )
 
     notes: list[str] = []
     if evaluate is None:
@@ -318,10 +326,12 @@ def rank_store(
     else:
         notes.append("no saved survival model: ranking on rules alone (p_fail is empty)")
     drives, groups = rank_drives(latest, flags, p_fail, horizon_days=horizon, lost=lost, config=config)
+    previous = read_tickets(tickets) if tickets is not None else pd.DataFrame(columns=TICKET_COLUMNS)
     if tickets is not None:
-        drives = flag_states(drives, read_tickets(tickets), as_of)
-    return RankResult(drives, groups, model is not None, horizon, as_of, notes, silent,
-                      not_reporting_summary(silent, sightings, removals), removed)
+        drives = flag_states(drives, previous, as_of)
+    summary = not_reporting_summary(silent, sightings, removals)
+    silent = silent_flags(silent, previous)[SILENT_REPORT_COLUMNS]
+    return RankResult(drives, groups, model is not None, horizon, as_of, notes, silent, summary, removed)
 
 
 def silent_drives(sightings: pd.DataFrame, removals: pd.DataFrame, as_of: datetime,

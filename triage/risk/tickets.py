@@ -173,9 +173,17 @@ def flag_states(drives: pd.DataFrame, previous: pd.DataFrame, as_of: datetime | 
     return drives
 
 
-def open_tickets_of(previous: pd.DataFrame, serials) -> pd.DataFrame:
-    """The open tickets (new / ongoing / not-reporting) of ``serials`` in an export."""
-    return previous[previous["state"].isin(OPEN_STATES) & previous["serial"].isin(set(serials))]
+def silent_flags(silent: pd.DataFrame, previous: pd.DataFrame) -> pd.DataFrame:
+    """Drives that stopped reporting, each with the flag it had open in ``previous`` (its most
+    urgent severity and the day first raised; empty for a drive with no open ticket)."""
+    open_before = previous[previous["state"].isin(OPEN_STATES)]
+    open_before = open_before.assign(_tier=open_before["severity"].map(lambda s: tier_index(s or None)))
+    worst = open_before.sort_values(["serial", "_tier"]).drop_duplicates("serial").set_index("serial")
+    silent = silent.copy()
+    silent["severity"] = silent["serial"].map(worst["severity"]) if len(worst) else None
+    silent["first_raised"] = silent["serial"].map(worst["first_flagged"]) if len(worst) else None
+    silent["state"] = "not-reporting"
+    return silent
 
 
 def to_csv_text(tickets: pd.DataFrame) -> str:
