@@ -71,3 +71,15 @@ def test_nightly_refit_keeps_the_settings_of_the_model_the_operator_fitted(tmp_p
     assert refitted.path_.name.startswith("fleet-risk-v2-")
     assert (refitted.horizon_days, tuple(refitted.by), refitted.count_proactive) == (
         14, ("model", "user_capacity_bytes"), False)
+
+
+def test_the_worst_outcome_wins_and_every_outcome_is_listed(tmp_path):
+    # docs/ranking.md, "Exit codes": 1, 5, 8, 3, 4 in that order
+    assert Exit.combine(Exit.NEW_FLAGS, Exit.INPUT_REJECTED, Exit.NOT_REPORTING) == Exit.NOT_REPORTING
+    assert Exit.combine(Exit.NEW_FLAGS, Exit.INPUT_REJECTED) == Exit.INPUT_REJECTED
+    assert Exit.combine(Exit.NOT_REPORTING, Exit.FAILURE) == Exit.FAILURE
+    assert Exit.combine(Exit.OK) == Exit.OK
+    report = _run(tmp_path, ["QN1"], rejected=2)
+    assert report.exit == Exit.INPUT_REJECTED
+    assert report.outcomes == [Exit.INPUT_REJECTED, Exit.NEW_FLAGS]
+    assert report.summary_record()["outcomes"] == ["INPUT_REJECTED", "NEW_FLAGS"]
