@@ -120,7 +120,7 @@ def test_nightly_reports_new_flags_and_a_summary_line(store, tmp_path):
 
 @pytest.mark.parametrize("command", [
     ["rank"], ["tickets", "--out", "t.csv"], ["nightly", "--dumps", "."], ["cohorts"], ["fit"],
-    ["survival", "QH-HD8T-A"],
+    ["survival", "QH-HD8T-A"], ["backtest"], ["forecast"],
 ])
 def test_a_store_that_does_not_exist_is_an_error_not_an_empty_fleet(tmp_path, command, monkeypatch):
     monkeypatch.chdir(tmp_path)
@@ -194,7 +194,7 @@ def test_nightly_summary_file_names_every_outcome_and_the_worst_wins(store, tmp_
 
 
 @pytest.mark.parametrize("command", [["rank"], ["cohorts"], ["fit"], ["survival", "x"],
-                                     ["rules", "list"], ["demo"]])
+                                     ["rules", "list"], ["demo"], ["backtest"], ["forecast"]])
 def test_every_table_command_takes_the_same_format_choices(command):
     help_text = _run(*command, "--help").stdout
     assert "--format <table|csv|json>" in help_text
@@ -203,7 +203,8 @@ def test_every_table_command_takes_the_same_format_choices(command):
 
 
 @pytest.mark.parametrize("command", [["ingest"], ["capture"], ["demo"], ["fit"], ["cohorts"], ["survival"],
-                                     ["rank"], ["tickets"], ["nightly"], ["rules", "check"], ["rules", "list"]])
+                                     ["rank"], ["tickets"], ["nightly"], ["rules", "check"], ["rules", "list"],
+                                     ["backtest"], ["forecast"]])
 def test_help_shows_no_python_type_names(command):
     import re
 
