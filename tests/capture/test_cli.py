@@ -55,6 +55,14 @@ def test_a_failing_drive_is_named_on_stderr_and_exits_device_errors(host, tmp_pa
     assert "1 of 2 drive(s) written" in result.stderr
 
 
+def test_no_drive_read_at_all_is_a_failure_not_some_drives_unreadable(host, tmp_path):
+    host["faults"] = {"/dev/sda": {"identify": OSError(errno.EIO, "Input/output error")}}
+    result = invoke("--out", str(tmp_path), "/dev/sda")
+    assert result.exit_code == Exit.FAILURE
+    assert "none of 1 drive(s) could be read; no file written" in result.stderr
+    assert list(tmp_path.iterdir()) == []
+
+
 def test_group_map_option_places_the_drives(host, tmp_path):
     group_map = tmp_path / "slots.csv"
     group_map.write_text("key,slot,group\nQHA7K2M001,ash-r03-bay01,ash-pool-a\n")

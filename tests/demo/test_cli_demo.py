@@ -40,13 +40,17 @@ def test_demo_ingests_fits_ranks_and_writes_tickets(first_run):
 
 
 def test_demo_ends_with_the_ranked_report_of_flagged_drives(first_run):
+    from triage.risk.score import tier_index
+
     _, result = first_run
-    report = json.loads(result.stdout)
-    assert 0 < len(report) <= 10
+    output = json.loads(result.stdout)
+    report = output["drives"]
+    assert output["as_of"] and 0 < len(report) <= 10
     assert [r["rank"] for r in report] == sorted(r["rank"] for r in report)
-    assert all(r["rules"] and r["evidence"] for r in report)
-    scores = [r["score"] for r in report]
-    assert scores == sorted(scores, reverse=True)
+    assert all(r["rules"] and r["evidence"] and r["state"] == "new" for r in report)
+    # action tier first, then score inside a tier (docs/ranking.md)
+    order = [(tier_index(r["severity"]), -r["score"]) for r in report]
+    assert order == sorted(order)
 
 
 def test_second_demo_of_the_same_fleet_reuses_the_store(first_run):

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from datetime import datetime, timezone
 from types import SimpleNamespace
 
 import pandas as pd
@@ -17,11 +18,11 @@ LATEST = pd.DataFrame({"serial": ["QN1"], "model": ["Corvid NV1920"], "host": ["
 
 
 def _rank_with(flagged):
-    def rank(store, ruleset, config=None):
+    def rank(store, ruleset, config=None, **_):
         flags = pd.DataFrame([(s, "media-errors", "replace-soon", "media", "t", "media errors 0 -> 3") for s in flagged],
                              columns=["serial", "rule_id", "severity", "category", "title", "evidence"])
         drives, groups = rank_drives(LATEST, flags, None)
-        return RankResult(drives, groups, False, None, None, ["rules alone"])
+        return RankResult(drives, groups, False, None, datetime.now(timezone.utc), ["rules alone"])
     return rank
 
 
@@ -52,7 +53,7 @@ def test_summary_line_names_counts_and_exit(tmp_path):
     report = _run(tmp_path, ["QN1"])
     assert report.refitted  # no saved model yet: refit due
     line = report.summary()
-    assert "1 new / 0 ongoing / 0 cleared tickets" in line and "NEW_FLAGS" in line
+    assert "1 new / 0 ongoing / 0 not-reporting / 0 cleared tickets" in line and "NEW_FLAGS" in line
 
 
 def test_nightly_refit_keeps_the_settings_of_the_model_the_operator_fitted(tmp_path):
@@ -70,3 +71,15 @@ def test_nightly_refit_keeps_the_settings_of_the_model_the_operator_fitted(tmp_p
     assert refitted.path_.name.startswith("fleet-risk-v2-")
     assert (refitted.horizon_days, tuple(refitted.by), refitted.count_proactive) == (
         14, ("model", "user_capacity_bytes"), False)
+
+
+def test_the_worst_outcome_wins_and_every_outcome_is_listed(tmp_path):
+    # docs/ranking.md, "Exit codes": 1, 5, 8, 3, 4 in that order
+    assert Exit.combine(Exit.NEW_FLAGS, Exit.INPUT_REJECTED, Exit.NOT_REPORTING) == Exit.NOT_REPORTING
+    assert Exit.combine(Exit.NEW_FLAGS, Exit.INPUT_REJECTED) == Exit.INPUT_REJECTED
+    assert Exit.combine(Exit.NOT_REPORTING, Exit.FAILURE) == Exit.FAILURE
+    assert Exit.combine(Exit.OK) == Exit.OK
+    report = _run(tmp_path, ["QN1"], rejected=2)
+    assert report.exit == Exit.INPUT_REJECTED
+    assert report.outcomes == [Exit.INPUT_REJECTED, Exit.NEW_FLAGS]
+    assert report.summary_record()["outcomes"] == ["INPUT_REJECTED", "NEW_FLAGS"]

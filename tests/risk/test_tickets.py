@@ -85,3 +85,64 @@ def test_export_is_rfc4180_with_crlf_and_quoted_commas(tmp_path):
     text = to_csv_text(current_tickets(ranked, _night(1)))
     assert text.count("\r\n") == 2 and "\n" not in text.replace("\r\n", "")
     assert '"pending 0 -> 24, ""fast"""' in text
+
+
+def _silent(serials, when="2026-11-01T02:00Z"):
+    return pd.DataFrame({"serial": serials, "last_seen": [pd.Timestamp(when)] * len(serials)})
+
+
+def _ranked_without(gone, flagged):
+    """Tonight's ranking when the drives in ``gone`` sent nothing (they are not in the frame)."""
+    ranked = _ranked(flagged)
+    return ranked[~ranked["serial"].isin(gone)].reset_index(drop=True)
+
+
+def test_a_silent_drive_keeps_its_ticket_open_as_not_reporting(tmp_path):
+    out = tmp_path / "tickets.csv"
+    export_tickets(_ranked(["QA1", "QA2"]), out, as_of=_night(1))
+    # night 2: QA2 sent nothing; silence is not evidence, so its ticket stays open
+    t2, c2 = export_tickets(_ranked_without(["QA2"], ["QA1"]), out, as_of=_night(2), silent=_silent(["QA2"]))
+    row = t2.set_index("serial").loc["QA2"]
+    assert row["state"] == "not-reporting" and row["last_seen"].startswith("2026-11-01T02:00")
+    assert (c2.new, c2.ongoing, c2.not_reporting, c2.cleared) == (0, 1, 1, 0)
+    # night 3: still silent, still open (not dropped like a cleared ticket)
+    t3, _ = export_tickets(_ranked_without(["QA2"], ["QA1"]), out, as_of=_night(3), silent=_silent(["QA2"]))
+    assert t3.set_index("serial").loc["QA2", "state"] == "not-reporting"
+
+
+def test_a_ticket_clears_when_the_drive_reports_without_the_flag_or_is_removed(tmp_path):
+    out = tmp_path / "tickets.csv"
+    export_tickets(_ranked(["QA1", "QA2"]), out, as_of=_night(1))
+    t2, _ = export_tickets(_ranked_without(["QA2"], []), out, as_of=_night(2), removed={"QA2"})
+    # QA1 reported tonight without the flag; QA2 is in the removal log
+    assert dict(zip(t2["serial"], t2["state"])) == {"QA1": "cleared", "QA2": "cleared"}
+
+
+def test_min_severity_keeps_watch_only_drives_out_but_open_tickets_stay(tmp_path):
+    out = tmp_path / "tickets.csv"
+    flags = pd.DataFrame([("QA1", "r", "watch", "media", "t", "e"), ("QA2", "r", "replace-soon", "media", "t", "e")],
+                         columns=["serial", "rule_id", "severity", "category", "title", "evidence"])
+    t1, _ = export_tickets(rank_drives(LATEST, flags, None)[0], out, as_of=_night(1), min_severity="check-path")
+    assert list(t1["serial"]) == ["QA2"]
+    # QA2 drops to watch: its open ticket goes on rather than clearing by a filter
+    flags.loc[1, "severity"] = "watch"
+    t2, _ = export_tickets(rank_drives(LATEST, flags, None)[0], out, as_of=_night(2), min_severity="check-path")
+    assert dict(zip(t2["serial"], t2["state"])) == {"QA2": "ongoing"}
+
+
+def test_rank_shows_each_flag_new_or_ongoing_with_the_day_first_raised(tmp_path):
+    from triage.risk.tickets import flag_states
+
+    out = tmp_path / "tickets.csv"
+    export_tickets(_ranked(["QA1"]), out, as_of=_night(1))
+    states = flag_states(_ranked(["QA1", "QA2"]), read_tickets(out), _night(2)).set_index("serial")
+    assert (states.loc["QA1", "state"], states.loc["QA1", "first_raised"]) == ("ongoing", "2026-11-01")
+    assert (states.loc["QA2", "state"], states.loc["QA2", "first_raised"]) == ("new", "2026-11-02")
+    assert states.loc["QA3", "state"] is None  # not flagged
+
+
+def test_an_export_from_before_this_version_still_reads(tmp_path):
+    old = tmp_path / "old.csv"
+    old.write_text("key,state,first_flagged,serial\r\nabc,new,2026-11-01,QA9\r\n")
+    t, counts = export_tickets(_ranked([]), tmp_path / "new.csv", previous=old, as_of=_night(2), silent=_silent(["QA9"]))
+    assert list(t["state"]) == ["not-reporting"] and counts.not_reporting == 1

@@ -103,3 +103,29 @@ def test_second_writer_is_refused_while_the_lock_is_held(tmp_path):
         with pytest.raises(StoreLocked):
             with Store(tmp_path).lock():
                 pass
+
+
+def test_existing_refuses_a_missing_folder_and_a_folder_without_a_manifest(tmp_path):
+    from triage.store.dataset import StoreMissing
+
+    with pytest.raises(StoreMissing, match="no such store"):
+        Store.existing(tmp_path / "typo")
+    with pytest.raises(StoreMissing, match="not a triage store"):
+        Store.existing(tmp_path)
+    assert not (tmp_path / "typo").exists()
+    Store(tmp_path / "s").append("snapshots", pd.DataFrame({
+        "serial": ["QS1"], "taken_at": pd.to_datetime(["2026-11-01T02:00Z"])}))
+    assert Store.existing(tmp_path / "s").root == tmp_path / "s"
+
+
+def test_last_rows_gives_each_serial_its_newest_capture_over_all_days(tmp_path):
+    store = Store(tmp_path / "s")
+    store.append("snapshots", pd.DataFrame({
+        "serial": ["QS1", "QS1", "QS2", "QS1"],
+        "host": ["ash-1", "ash-2", "ash-1", "ash-3"],
+        "taken_at": pd.to_datetime(["2026-10-01T02:00Z", "2026-10-20T02:00Z", "2026-10-05T02:00Z",
+                                    "2026-10-20T01:00Z"])}))
+    rows = store.last_rows("snapshots", "serial", ["host"]).sort_values("serial")
+    assert list(zip(rows["serial"], rows["host"])) == [("QS1", "ash-2"), ("QS2", "ash-1")]
+    times = store.last_times("snapshots", "serial").set_index("serial")["taken_at"]
+    assert times["QS2"] == pd.Timestamp("2026-10-05T02:00Z")

@@ -6,6 +6,7 @@ import csv
 import io
 import json
 
+import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
@@ -125,6 +126,9 @@ def test_fit_saves_a_model_that_latest_model_finds(store_root):
 
 
 def test_empty_store_is_a_clear_failure(tmp_path):
+    # a store holding only a removal log: it exists, but there is nothing to estimate from
+    Store(tmp_path).append("removals", pd.DataFrame({
+        "serial": ["QS1"], "removed_at": pd.to_datetime(["2026-11-01T02:00Z"]), "reason": ["failed"]}))
     for command in (["cohorts"], ["survival", "QH-HD8T-A"], ["fit"]):
         result = run(*command, "--store", str(tmp_path))
         assert result.exit_code == Exit.FAILURE
@@ -181,3 +185,27 @@ def test_plot_into_a_missing_folder_is_refused_and_creates_nothing(store_root, t
     result = run("survival", "Tallow 14T", "--plot", str(target), "--store", str(store_root))
     assert result.exit_code == Exit.USAGE and "does not exist" in result.output
     assert not target.parent.exists()
+
+
+def test_a_folder_that_is_not_a_store_is_a_clear_failure(tmp_path):
+    for command in (["cohorts"], ["survival", "QH-HD8T-A"], ["fit"]):
+        result = run(*command, "--store", str(tmp_path))
+        assert result.exit_code == Exit.FAILURE
+        assert "not a triage store" in result.output
+
+
+def test_cohorts_state_the_newest_capture_and_warn_when_it_is_stale(store_root):
+    result = run("cohorts", "--stale-hours", "1", "--store", str(store_root))
+    assert result.exit_code == Exit.OK, result.output
+    newest = Store(store_root).read("snapshots", columns=["taken_at"])["taken_at"].max()
+    assert f"cohorts: as of {newest:%Y-%m-%d %H:%M} UTC" in result.stderr
+    assert "warning: the newest capture is" in result.stderr
+
+
+def test_survival_writes_its_curve_as_csv_too(store_root):
+    curve = run("survival", "QH-HD8T-A", "--format", "csv", "--store", str(store_root))
+    assert curve.exit_code == Exit.OK, curve.output
+    text = curve.stdout_bytes.decode()  # raw bytes: the runner's .stdout folds CRLF to LF
+    assert text.endswith("\r\n")  # RFC 4180 section 2: CRLF line breaks
+    rows = list(csv.DictReader(io.StringIO(text, newline="")))
+    assert rows and {"age_hours", "survival", "at_risk"} <= set(rows[0])

@@ -83,6 +83,10 @@ class CaptureResult:
 
     @property
     def exit_code(self) -> Exit:
+        """FAILURE when no drive was read at all (nothing captured is not "some drives unreadable",
+        which a service unit may accept as success); DEVICE_ERRORS when some were."""
+        if self.path is None:
+            return Exit.FAILURE
         return Exit.DEVICE_ERRORS if self.failures else Exit.OK
 
 

@@ -1,17 +1,24 @@
-"""Shared pieces of the command line: the Typer app, the --store option and the one-line failure."""
+"""Shared pieces of the command line: the Typer app, the options every group uses, the one-line failure."""
 
 from __future__ import annotations
 
+from enum import Enum
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Optional
 
 import typer
+from typer.core import TyperArgument
 
 from triage import __version__
 from triage.exitcodes import Exit
+from triage.risk.score import TIERS
 
 if TYPE_CHECKING:
     from triage.store.dataset import Store
+
+# Typer prints a positional argument's Python annotation (e.g. "<list[Path]>") beside its name in
+# --help; the metavar we give each argument already says what to pass, so leave the type out.
+TyperArgument.display_type_rich = lambda self, ctx: None
 
 app = typer.Typer(
     name="triage",
@@ -21,11 +28,38 @@ app = typer.Typer(
     rich_markup_mode=None,
 )
 
+
+class OutputFormat(str, Enum):
+    """``--format`` of every command that prints a table: declared once, validated and listed by Typer."""
+
+    table = "table"
+    csv = "csv"
+    json = "json"
+
+
+def format_option(what: str = "") -> OutputFormat:
+    """The one ``--format`` option; ``what`` names what the format applies to, for --help."""
+    return typer.Option(
+        OutputFormat.table, "--format", case_sensitive=False,
+        help="Output: a table for people, CSV (RFC 4180) or JSON" + (f" ({what})." if what else "."),
+    )
+
+
+#: Action tiers as --severity / --min-severity choices, from the one list in triage.risk.score.
+Tier = Enum("Tier", {name.replace("-", "_"): name for name in TIERS}, type=str)
+
 StoreOption = typer.Option(
     None,
     "--store",
+    metavar="DIR",
     help="Store directory (default: $TRIAGE_STORE, then 'store' in triage.toml, then ./triage-store).",
 )
+
+
+StaleOption = typer.Option(
+    36.0, "--stale-hours", min=1.0, metavar="HOURS",
+    help="Warn when the newest capture is older than this (rank, tickets and nightly also exit 8, and "
+         "call drives silent this long against the newest capture 'not reporting').")
 
 
 def _version(value: bool) -> None:
@@ -43,12 +77,23 @@ def _root(
     """Fleet drive-health triage."""
 
 
-def open_store(option: Path | None) -> "Store":
-    """The store the --store option names, brought up to the current format (docs/store.md)."""
-    from triage.config import resolve_store
-    from triage.store.dataset import Store, StoreFormatError, StoreLocked
+def open_store(option: Optional[Path], *, create: bool = False) -> "Store":
+    """The store the --store option names, brought up to the current format (docs/store.md).
 
-    store = Store(resolve_store(option))
+    Only ``ingest`` passes ``create=True``: for every other command a store that does not exist
+    is one line and FAILURE, so a typo never reads as an empty, healthy fleet.
+    """
+    from triage.config import resolve_store
+    from triage.store.dataset import Store, StoreFormatError, StoreLocked, StoreMissing
+
+    try:
+        root = resolve_store(option)
+    except ValueError as exc:  # an unreadable triage.toml
+        fail(str(exc), Exit.USAGE)
+    try:
+        store = Store(root) if create else Store.existing(root)
+    except StoreMissing as exc:
+        fail(str(exc), Exit.FAILURE)
     try:
         store.upgrade()
     except StoreLocked as exc:

@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import StoreOption, app, fail, open_store
+from triage.cli.common import OutputFormat, StoreOption, app, fail, format_option, open_store
 from triage.cli.risk import _print_cautions, _risk_inputs
 from triage.exitcodes import Exit
 
@@ -16,7 +16,7 @@ from triage.exitcodes import Exit
     epilog="Example: triage ingest /srv/captures/2026-11-30 --store /srv/triage/store",
 )
 def ingest(
-    paths: list[Path] = typer.Argument(..., help="Capture files (.jsonl, .jsonl.gz), removal logs (.csv), or folders of them."),
+    paths: list[Path] = typer.Argument(..., metavar="INPUT", help="Capture files (.jsonl, .jsonl.gz), removal logs (.csv), or folders of them."),
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Store capture files and removal logs; bad lines go to quarantine with a reason."""
@@ -24,7 +24,7 @@ def ingest(
     from triage.report.console import progress_bar
     from triage.store.dataset import StoreLocked
 
-    target = open_store(store)
+    target = open_store(store, create=True)  # the one command that may create a store
     try:
         with target.lock(), progress_bar("ingesting files") as progress:
             report = ingest_paths(target, paths, progress=progress)
@@ -33,9 +33,9 @@ def ingest(
     except StoreLocked as exc:
         fail(str(exc), Exit.LOCKED)
     for rejected in report.rejected[:20]:
-        typer.echo(f"rejected: {rejected}", err=True)
+        typer.echo(f"quarantined: {rejected}", err=True)
     if len(report.rejected) > 20:
-        typer.echo(f"rejected: ... {len(report.rejected) - 20} more in {target.quarantine_dir}", err=True)
+        typer.echo(f"quarantined: ... {len(report.rejected) - 20} more in {target.quarantine_dir}", err=True)
     stored = ", ".join(f"{n} {t}" for t, n in sorted(report.stored.items())) or "nothing new"
     typer.echo(
         f"ingest: {report.files_read} file(s) read, {report.files_skipped} already stored; "
@@ -53,15 +53,16 @@ def ingest(
 )
 def capture(
     devices: Optional[list[str]] = typer.Argument(
-        None, help="Device nodes to read, e.g. /dev/sda /dev/nvme0 (default: every local SATA and NVMe drive in sysfs)."
+        None, metavar="DEVICE", help="Device nodes to read, e.g. /dev/sda /dev/nvme0 (default: every local SATA and NVMe drive in sysfs)."
     ),
-    out: Path = typer.Option(Path("."), "--out", help="Existing folder for <host>-<YYYY-MM-DD>.jsonl.gz."),
+    out: Path = typer.Option(Path("."), "--out", metavar="DIR", help="Existing folder for <host>-<YYYY-MM-DD>.jsonl.gz."),
     group_map: Optional[Path] = typer.Option(
-        None, "--group-map", help="CSV key,slot,group: drive serial or wwn:<16 hex> -> slot and redundancy group."
+        None, "--group-map", metavar="FILE", help="CSV key,slot,group: drive serial or wwn:<16 hex> -> slot and redundancy group."
     ),
 ) -> None:
     """Read IDENTIFY and SMART / health data from this host's drives (read-only; needs root) into one
-    capture file. Exit: 0 all read, 6 some drives could not be read (the rest were written), 7 not root."""
+    capture file. Exit: 0 all read, 6 some drives could not be read (the rest were written), 1 no drive
+    could be read at all (no file written), 7 not root."""
     from triage.capture import (
         GroupMapError,
         NeedsRoot,
@@ -107,11 +108,10 @@ def capture(
         typer.echo(f"triage: capture: {failure.describe()}", err=True)
     for warning in result.warnings:
         typer.echo(f"capture: warning: {warning}", err=True)
-    if result.path is None:
-        typer.echo(f"capture: none of {len(targets)} drive(s) could be read; no file written", err=True)
-    else:
-        typer.echo(str(result.path))
-        typer.echo(f"capture: {len(result.captured)} of {len(targets)} drive(s) written to {result.path}", err=True)
+    if result.path is None:  # nothing read is a failed capture, not "some drives unreadable"
+        fail(f"capture: none of {len(targets)} drive(s) could be read; no file written", Exit.FAILURE)
+    typer.echo(str(result.path))
+    typer.echo(f"capture: {len(result.captured)} of {len(targets)} drive(s) written to {result.path}", err=True)
     raise typer.Exit(int(result.exit_code))
 
 
@@ -121,12 +121,12 @@ def capture(
     epilog="Example: triage demo --seed 7 --drives 1200 --days 120 --work demo-work --top 15",
 )
 def demo(
-    seed: int = typer.Option(7, help="Seed of the invented fleet; the same seed gives the same files."),
-    drives: int = typer.Option(1200, min=10, help="Drives in the fleet."),
-    days: int = typer.Option(120, min=2, help="Nightly captures per drive."),
-    work: Path = typer.Option(Path("demo-work"), help="Folder for the capture files, the store and the tickets."),
-    top: int = typer.Option(15, "--top", min=1, help="Drives shown in the closing ranked report."),
-    fmt: str = typer.Option("table", "--format", help="table | csv | json (the ranked report)."),
+    seed: int = typer.Option(7, metavar="N", help="Seed of the invented fleet; the same seed gives the same files."),
+    drives: int = typer.Option(1200, min=10, metavar="N", help="Drives in the fleet."),
+    days: int = typer.Option(120, min=2, metavar="N", help="Nightly captures per drive."),
+    work: Path = typer.Option(Path("demo-work"), metavar="DIR", help="Folder for the capture files, the store and the tickets."),
+    top: int = typer.Option(15, "--top", min=1, metavar="N", help="Drives shown in the closing ranked report."),
+    fmt: OutputFormat = format_option("the closing ranked report"),
 ) -> None:
     """Run the whole pipeline on an invented fleet: generate its capture files, ingest them, fit the
     model, rank the drives, write tickets; ends with the ranked report."""
@@ -138,8 +138,6 @@ def demo(
     from triage.risk.rank import filter_ranked
     from triage.store.dataset import Store
 
-    if fmt not in ("table", "csv", "json"):
-        fail(f"--format must be table, csv or json, not {fmt!r}", Exit.USAGE)
     spec = FleetSpec(seed=seed, n_drives=drives, days=days)
     try:
         folder, reused = prepare_demo_folder(work, spec)
@@ -152,14 +150,15 @@ def demo(
         write_captures(fleet, folder.captures, progress=progress)
     ruleset, config = _risk_inputs(None, False, None)
     with progress_bar("ingesting") as progress:
+        # the invented fleet lives in the past: its last night is "now", so staleness is not checked
         report = run_nightly(
             Store(folder.store), folder.captures, folder.tickets, ruleset, refit_days=0.0, config=config,
             ingest=lambda store, paths: ingest_paths(store, paths, progress=progress),
-            log=lambda line: typer.echo(f"demo: {line}", err=True))
+            log=lambda line: typer.echo(f"demo: {line}", err=True), stale_hours=None)
     typer.echo(report.summary(), err=True)
     result = report.result
     _print_cautions(result)
-    render_ranked(filter_ranked(result.drives, flagged_only=True, top=top), fmt, result.horizon_days)
+    render_ranked(result, filter_ranked(result.drives, flagged_only=True, top=top), fmt, report.silence)
     typer.echo(f"demo: tickets in {folder.tickets}; explore with: triage cohorts --store {folder.store}, "
                f"triage survival <cohort> --store {folder.store}, triage rank --store {folder.store}", err=True)
     if report.rejected:

@@ -9,8 +9,8 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import StoreOption, app, fail, open_store
-from triage.cli.risk import RulesOption, _risk_inputs
+from triage.cli.common import OutputFormat, StoreOption, app, fail, format_option, open_store
+from triage.cli.risk import NoDefaultRulesOption, RulesOption, _risk_inputs
 from triage.exitcodes import Exit
 
 
@@ -25,24 +25,17 @@ def _night(value: Optional[str], option: str) -> Optional[datetime]:
     return datetime(day.year, day.month, day.day, tzinfo=timezone.utc)
 
 
-def _existing_store(store: Optional[Path]):
-    target = open_store(store)
-    if not target.root.is_dir():
-        fail(f"{target.root}: no such store (only 'triage ingest' creates one; check --store)", Exit.FAILURE)
-    return target
-
-
 @app.command(epilog="Example: triage backtest --horizon-days 30 --max-false-alarm 0.01 --plot backtest.png")
 def backtest(
-    horizon_days: float = typer.Option(30.0, "--horizon-days", min=1.0, help="A flag counts when the drive fails within this many days."),
-    max_false_alarm: float = typer.Option(0.01, "--max-false-alarm", help="Operating point: the highest recall whose false-alarm rate stays within this share of drives (between 0 and 1)."),
-    first: Optional[str] = typer.Option(None, "--from", help="First scored night, YYYY-MM-DD (default: after the training period)."),
-    last: Optional[str] = typer.Option(None, "--to", help="Last scored night, YYYY-MM-DD (default: the last with a full horizon of data after it)."),
-    refit_days: int = typer.Option(30, "--refit-days", min=1, help="Refit the model on the data before the night every this many days."),
-    fmt: str = typer.Option("table", "--format", help="table | json"),
-    plot: Optional[Path] = typer.Option(None, "--plot", help="Also draw the recall / false-alarm curve (.png or .svg)."),
+    horizon_days: float = typer.Option(30.0, "--horizon-days", min=1.0, metavar="DAYS", help="A flag counts when the drive fails within this many days."),
+    max_false_alarm: float = typer.Option(0.01, "--max-false-alarm", metavar="SHARE", help="Operating point: the highest recall whose false-alarm rate stays within this share of drives (between 0 and 1)."),
+    first: Optional[str] = typer.Option(None, "--from", metavar="DAY", help="First scored night, YYYY-MM-DD (default: after the training period)."),
+    last: Optional[str] = typer.Option(None, "--to", metavar="DAY", help="Last scored night, YYYY-MM-DD (default: the last with a full horizon of data after it)."),
+    refit_days: int = typer.Option(30, "--refit-days", min=1, metavar="DAYS", help="Refit the model on the data before the night every this many days."),
+    fmt: OutputFormat = format_option("CSV: one row per method; JSON: everything"),
+    plot: Optional[Path] = typer.Option(None, "--plot", metavar="FILE", help="Also draw the recall / false-alarm curve (.png or .svg)."),
     rules: Optional[list[Path]] = RulesOption,
-    no_default_rules: bool = typer.Option(False, "--no-default-rules", help="Use only the rule folders given."),
+    no_default_rules: bool = NoDefaultRulesOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Replay the stored history night by night: would each rule, each severity, the drive's own
@@ -51,8 +44,6 @@ def backtest(
     from triage.report.predict import plot_backtest, render_backtest
     from triage.risk.backtest import BacktestError, backtest_store
 
-    if fmt not in ("table", "json"):
-        fail(f"--format must be table or json, not {fmt!r}", Exit.USAGE)
     if not 0 < max_false_alarm < 1:
         fail(f"--max-false-alarm must lie strictly between 0 and 1, got {max_false_alarm}", Exit.USAGE)
     if plot is not None and plot.suffix.lower() not in (".png", ".svg"):
@@ -60,7 +51,7 @@ def backtest(
     if plot is not None and not plot.parent.resolve().is_dir():
         fail(f"{plot}: folder {plot.parent} does not exist", Exit.USAGE)
     ruleset, _ = _risk_inputs(rules, no_default_rules, None)
-    target = _existing_store(store)
+    target = open_store(store)
     try:
         with progress_bar("replaying nights") as update:
             result = backtest_store(target, ruleset, horizon_days=horizon_days, max_false_alarm=max_false_alarm,
@@ -76,11 +67,11 @@ def backtest(
 
 @app.command(epilog="Example: triage forecast --days 90 --service-level 0.95 --by model --format table")
 def forecast(
-    days: float = typer.Option(90.0, "--days", min=1.0, help="Forecast failures within this many days."),
-    as_of: Optional[str] = typer.Option(None, "--as-of", help="Forecast from the end of this UTC date (YYYY-MM-DD) using only data up to then (default: the newest capture)."),
-    service_level: float = typer.Option(0.95, "--service-level", help="Spares so that running out is at most 1 - this likely (between 0 and 1)."),
-    by: str = typer.Option("model", "--by", help="Cohort keys, comma-separated, among model, firmware, bus, user_capacity_bytes."),
-    fmt: str = typer.Option("table", "--format", help="table | csv | json"),
+    days: float = typer.Option(90.0, "--days", min=1.0, metavar="DAYS", help="Forecast failures within this many days."),
+    as_of: Optional[str] = typer.Option(None, "--as-of", metavar="DAY", help="Forecast from the end of this UTC date (YYYY-MM-DD) using only data up to then (default: the newest capture)."),
+    service_level: float = typer.Option(0.95, "--service-level", metavar="SHARE", help="Spares so that running out is at most 1 - this likely (between 0 and 1)."),
+    by: str = typer.Option("model", "--by", metavar="KEYS", help="Cohort keys, comma-separated, among model, firmware, bus, user_capacity_bytes."),
+    fmt: OutputFormat = format_option(),
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Expected failures per cohort, per site and fleet-wide over the next N days, with a 90 %
@@ -90,8 +81,6 @@ def forecast(
     from triage.risk.forecast import ForecastError, forecast_store
     from triage.survival.observations import check_by
 
-    if fmt not in ("table", "csv", "json"):
-        fail(f"--format must be table, csv or json, not {fmt!r}", Exit.USAGE)
     if not 0 < service_level < 1:
         fail(f"--service-level must lie strictly between 0 and 1, got {service_level}", Exit.USAGE)
     try:
@@ -101,7 +90,7 @@ def forecast(
     moment = _night(as_of, "--as-of")
     if moment is not None:
         moment += timedelta(days=1)  # a date means the end of that day, UTC
-    target = _existing_store(store)
+    target = open_store(store)
     try:
         with progress_bar("reading drive states") as update:
             result = forecast_store(target, days=days, as_of=moment, by=keys, service_level=service_level,

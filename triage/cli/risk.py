@@ -7,23 +7,38 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import StoreOption, app, fail, open_store
+from triage.cli.common import OutputFormat, StaleOption, StoreOption, Tier, app, fail, format_option, open_store
 from triage.exitcodes import Exit
+from triage.risk.score import TIERS
+
+#: Typer would print a repeatable choice as "<list[...]>"; the same choices, without the type name.
+_TIER_CHOICES = "<" + "|".join(TIERS) + ">"
 
 
 def _print_cautions(result) -> None:
-    """Degraded groups, on stderr: advice that could cost data defers to the site's procedure."""
-    from triage.risk.score import DEGRADED_CAUTION  # the same words as each member's action
-
+    """Degraded groups, on stderr too: advice that could cost data defers to the site's procedure."""
     groups = result.groups
     if not len(groups):
         return
-    for row in groups[groups["degraded"]].itertuples(index=False):
-        typer.echo(f"caution: {DEGRADED_CAUTION.format(group=row.group, lost=row.lost)}", err=True)
+    for caution in groups.loc[groups["degraded"], "caution"]:
+        typer.echo(f"caution: {caution}", err=True)
+
+
+def _print_warnings(warnings: list[str]) -> None:
+    for line in warnings:
+        typer.echo(f"warning: {line}", err=True)
 
 
 # -- risk: rank, tickets, nightly (triage/risk, triage/report/rank.py, triage/report/tickets.py) --
-RulesOption = typer.Option(None, "--rules", help="Rule folder (repeatable); groups.toml is read from the first that has one.")
+RulesOption = typer.Option(None, "--rules", metavar="DIR",
+                           help="Rule folder (repeatable); groups.toml is read from the first that has one.")
+NoDefaultRulesOption = typer.Option(False, "--no-default-rules", help="Use only the rule folders given.")
+GroupConfigOption = typer.Option(None, "--group-config", metavar="FILE",
+                                 help="Group tolerance file (groups.toml format).")
+MinSeverityOption = typer.Option(
+    None, "--min-severity", case_sensitive=False,
+    help="Leave drives below this action tier out of new tickets (tiers in order of urgency); "
+         "open tickets stay open while flagged.")
 
 
 def _risk_inputs(rules: Optional[list[Path]], no_default_rules: bool, group_config: Optional[Path]):
@@ -46,91 +61,120 @@ def _risk_inputs(rules: Optional[list[Path]], no_default_rules: bool, group_conf
     return ruleset, config
 
 
+def _rank(store, ruleset, config, tickets: Optional[Path], stale_hours: float):
+    """Rank the store; notes on stderr; returns (result, silence warnings)."""
+    from triage.risk.rank import rank_store, silence_warnings
+
+    try:
+        result = rank_store(store, ruleset, config=config, tickets=tickets, silent_hours=stale_hours)
+    except (OSError, ValueError) as exc:  # e.g. --tickets names a file that is not our export
+        fail(str(exc), Exit.FAILURE)
+    for note in result.notes:
+        typer.echo(f"note: {note}", err=True)
+    return result, silence_warnings(result, stale_hours=stale_hours)
+
+
 @app.command(
-    epilog="Example: triage rank --top 20 --site ash --severity replace-now --format table",
+    epilog="Example: triage rank --top 20 --site ash --severity replace-now --tickets /srv/triage/tickets.csv",
 )
 def rank(
-    top: int = typer.Option(25, "--top", min=1, help="Show this many drives."),
-    host: Optional[list[str]] = typer.Option(None, "--host", help="Host name pattern (fnmatch, repeatable)."),
-    site: Optional[list[str]] = typer.Option(None, "--site", help="Site pattern: host name up to its first '-' (repeatable)."),
-    group: Optional[list[str]] = typer.Option(None, "--group", help="Redundancy group pattern (repeatable)."),
-    severity: Optional[list[str]] = typer.Option(None, "--severity", help="replace-now | replace-soon | watch | check-path (repeatable)."),
-    fmt: str = typer.Option("table", "--format", help="table | csv | json"),
+    top: int = typer.Option(25, "--top", min=1, metavar="N", help="Show this many drives."),
+    host: Optional[list[str]] = typer.Option(None, "--host", metavar="PATTERN", help="Host name pattern (fnmatch, repeatable)."),
+    site: Optional[list[str]] = typer.Option(None, "--site", metavar="PATTERN", help="Site pattern: host name up to its first '-' (repeatable)."),
+    group: Optional[list[str]] = typer.Option(None, "--group", metavar="PATTERN", help="Redundancy group pattern (repeatable)."),
+    severity: Optional[list[Tier]] = typer.Option(None, "--severity", case_sensitive=False, metavar=_TIER_CHOICES,
+                                                  help="Only this action tier (repeatable)."),
+    fmt: OutputFormat = format_option(),
+    tickets: Optional[Path] = typer.Option(None, "--tickets", metavar="FILE",
+                                           help="Last ticket export: show each flag as new or ongoing, and since when."),
+    stale_hours: float = StaleOption,
     rules: Optional[list[Path]] = RulesOption,
-    no_default_rules: bool = typer.Option(False, "--no-default-rules", help="Use only the rule folders given."),
-    group_config: Optional[Path] = typer.Option(None, "--group-config", help="Group tolerance file (groups.toml format)."),
+    no_default_rules: bool = NoDefaultRulesOption,
+    group_config: Optional[Path] = GroupConfigOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
-    """Rank drives for proactive replacement: rule severity, P(fail) and redundancy groups."""
+    """Rank drives: action tier first (replace now, replace soon, check the path, watch), then the
+    risk score; lists drives, hosts and sites not reporting. Exit: 0, 8 something is not reporting
+    or the data is stale, 1 failure (a missing store)."""
     from triage.report.rank import render_ranked
-    from triage.risk.rank import filter_ranked, rank_store
+    from triage.risk.rank import filter_ranked
 
-    if fmt not in ("table", "csv", "json"):
-        fail(f"--format must be table, csv or json, not {fmt!r}", Exit.USAGE)
+    target = open_store(store)
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
-    result = rank_store(open_store(store), ruleset, config=config)
-    for note in result.notes:
-        typer.echo(f"note: {note}", err=True)
-    try:
-        shown = filter_ranked(result.drives, host=host or (), site=site or (), group=group or (),
-                              severity=severity or (), top=top)
-    except ValueError as exc:
-        fail(str(exc), Exit.USAGE)
+    result, warnings = _rank(target, ruleset, config, tickets, stale_hours)
+    shown = filter_ranked(result.drives, host=host or (), site=site or (), group=group or (),
+                          severity=[s.value for s in severity or ()], top=top)
     _print_cautions(result)
-    render_ranked(shown, fmt, result.horizon_days)
+    _print_warnings(warnings)
+    render_ranked(result, shown, fmt, warnings)
+    if warnings:
+        raise typer.Exit(int(Exit.NOT_REPORTING))
 
 
 @app.command(
-    epilog="Example: triage tickets --out /srv/triage/tickets.csv --store /srv/triage/store",
+    epilog="Example: triage tickets --out /srv/triage/tickets.csv --min-severity check-path --store /srv/triage/store",
 )
 def tickets(
-    out: Path = typer.Option(..., "--out", help="Ticket CSV to write (RFC 4180); its old content is the previous night."),
-    previous: Optional[Path] = typer.Option(None, "--previous", help="Previous export, if not --out itself."),
+    out: Path = typer.Option(..., "--out", metavar="FILE", help="Ticket CSV to write (RFC 4180); its old content is the previous night."),
+    previous: Optional[Path] = typer.Option(None, "--previous", metavar="FILE", help="Previous export, if not --out itself."),
+    min_severity: Optional[Tier] = MinSeverityOption,
+    stale_hours: float = StaleOption,
     rules: Optional[list[Path]] = RulesOption,
-    no_default_rules: bool = typer.Option(False, "--no-default-rules", help="Use only the rule folders given."),
-    group_config: Optional[Path] = typer.Option(None, "--group-config", help="Group tolerance file (groups.toml format)."),
+    no_default_rules: bool = NoDefaultRulesOption,
+    group_config: Optional[Path] = GroupConfigOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
-    """Write one ticket row per flagged drive, marked new / ongoing / cleared against the previous export."""
+    """Write one ticket row per flagged drive: new / ongoing / not-reporting / cleared against the
+    previous export (cleared only when the drive reported without the flag or was removed).
+    Exit: 0 nothing new, 4 new tickets, 8 something is not reporting (wins over 4), 1 failure."""
     from triage.report.tickets import summary_line
-    from triage.risk.rank import rank_store
     from triage.risk.tickets import export_tickets
 
+    target = open_store(store)
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
-    result = rank_store(open_store(store), ruleset, config=config)
-    for note in result.notes:
-        typer.echo(f"note: {note}", err=True)
+    result, warnings = _rank(target, ruleset, config, None, stale_hours)
     try:
-        _, counts = export_tickets(result.drives, out, previous, as_of=result.as_of)
+        _, counts = export_tickets(result.drives, out, previous, as_of=result.as_of, removed=result.removed,
+                                   silent=result.silent, min_severity=min_severity.value if min_severity else None)
     except (OSError, ValueError) as exc:
         fail(str(exc), Exit.FAILURE)
-    typer.echo(summary_line(counts, out), err=True)
-    if counts.new:
-        raise typer.Exit(int(Exit.NEW_FLAGS))
+    _print_warnings(warnings)
+    typer.echo(summary_line(counts, out, result.as_of), err=True)
+    raise typer.Exit(int(Exit.combine(Exit.NOT_REPORTING if warnings else Exit.OK,
+                                      Exit.NEW_FLAGS if counts.new else Exit.OK)))
 
 
 @app.command(
-    epilog="Example: triage nightly --dumps /srv/captures/incoming --out /srv/triage/tickets.csv --store /srv/triage/store",
+    epilog="Example: triage nightly --dumps /srv/captures/incoming --out /srv/triage/tickets.csv "
+           "--summary /srv/triage/nightly.json --store /srv/triage/store",
 )
 def nightly(
-    dumps: Path = typer.Option(..., "--dumps", help="Folder of capture files and removal logs to ingest."),
-    out: Path = typer.Option(Path("tickets.csv"), "--out", help="Ticket CSV (read as last night's, then rewritten)."),
-    refit_days: float = typer.Option(7.0, "--refit-days", min=0.0, help="Refit the model when the saved one is this old."),
+    dumps: Path = typer.Option(..., "--dumps", metavar="DIR", help="Folder of capture files and removal logs to ingest."),
+    out: Path = typer.Option(Path("tickets.csv"), "--out", metavar="FILE", help="Ticket CSV (read as last night's, then rewritten)."),
+    summary: Optional[Path] = typer.Option(None, "--summary", metavar="FILE",
+                                           help="Also write the run's outcomes as JSON (every outcome, not only the exit code's)."),
+    refit_days: float = typer.Option(7.0, "--refit-days", min=0.0, metavar="DAYS", help="Refit the model when the saved one is this old."),
+    min_severity: Optional[Tier] = MinSeverityOption,
+    stale_hours: float = StaleOption,
     rules: Optional[list[Path]] = RulesOption,
-    no_default_rules: bool = typer.Option(False, "--no-default-rules", help="Use only the rule folders given."),
-    group_config: Optional[Path] = typer.Option(None, "--group-config", help="Group tolerance file (groups.toml format)."),
+    no_default_rules: bool = NoDefaultRulesOption,
+    group_config: Optional[Path] = GroupConfigOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
-    """Ingest new captures, refit when due, rank, write tickets. Exit: 0 nothing new, 4 new flags,
-    3 some input rejected, 5 another run holds the lock, 1 failure."""
+    """Ingest new captures, refit when due, rank, write tickets. Exit (worst outcome): 1 failure,
+    5 another run holds the lock, 8 something is not reporting or stale, 3 some input quarantined,
+    4 new flags, 0 nothing new; --summary FILE lists every outcome."""
     from triage.risk.nightly import run_nightly
     from triage.store.dataset import StoreLocked
 
-    ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
     target = open_store(store)
+    ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
     try:
         report = run_nightly(target, dumps, out, ruleset, refit_days=refit_days, config=config,
-                             log=lambda line: typer.echo(line, err=True))
+                             log=lambda line: typer.echo(line, err=True), stale_hours=stale_hours,
+                             min_severity=min_severity.value if min_severity else None)
+        if summary is not None:
+            report.write_summary(summary)
     except StoreLocked as exc:
         fail(f"{exc}; this run did nothing", Exit.LOCKED)
     except (FileNotFoundError, ValueError) as exc:

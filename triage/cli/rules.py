@@ -8,7 +8,7 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import app, fail
+from triage.cli.common import OutputFormat, app, fail, format_option
 from triage.exitcodes import Exit
 
 
@@ -34,7 +34,7 @@ def _load_ruleset(dirs: Optional[list[Path]], no_default_rules: bool):
 @rules_app.command("check", epilog="Example: triage rules check /etc/triage/rules")
 def rules_check(
     dirs: Optional[list[Path]] = typer.Argument(
-        None, help="Site rule folders or files (default: $TRIAGE_RULES, then 'rules' in triage.toml, then ./rules)."
+        None, metavar="DIR", help="Site rule folders or files (default: $TRIAGE_RULES, then 'rules' in triage.toml, then ./rules)."
     ),
     no_default_rules: bool = typer.Option(False, "--no-default-rules", help="Check without the packaged defaults."),
 ) -> None:
@@ -52,11 +52,11 @@ def rules_check(
 @rules_app.command("list", epilog="Example: triage rules list --dir /etc/triage/rules --format csv")
 def rules_list(
     dirs: Optional[list[Path]] = typer.Option(
-        None, "--dir", "--rules",
+        None, "--dir", "--rules", metavar="DIR",
         help="Site rule folder or file (repeatable; default: $TRIAGE_RULES, then 'rules' in triage.toml, then ./rules).",
     ),
     no_default_rules: bool = typer.Option(False, "--no-default-rules", help="Leave out the packaged defaults."),
-    fmt: str = typer.Option("table", "--format", help="table | csv | json"),
+    fmt: OutputFormat = format_option(),
 ) -> None:
     """Show the rules in effect: defaults, site rules, overrides and disabled ones."""
     import csv
@@ -68,17 +68,15 @@ def rules_list(
     from triage.report.console import stdout_console
     from triage.rules import rules_table
 
-    if fmt not in ("table", "csv", "json"):
-        fail(f"--format must be table, csv or json, not {fmt!r}", Exit.USAGE)
     ruleset = _load_ruleset(dirs, no_default_rules)
     for error in ruleset.errors:
         typer.echo(f"rule error (not loaded): {error}", err=True)
     table = rules_table(ruleset)
-    if fmt == "csv":
+    if fmt is OutputFormat.csv:
         writer = csv.writer(sys.stdout, lineterminator="\r\n")  # RFC 4180 line ends
         writer.writerow(table.columns)
         writer.writerows(table.itertuples(index=False))
-    elif fmt == "json":
+    elif fmt is OutputFormat.json:
         typer.echo(json.dumps(table.to_dict(orient="records"), indent=2))
     else:
         console = stdout_console()

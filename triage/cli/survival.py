@@ -8,12 +8,12 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import StoreOption, app, fail, open_store
+from triage.cli.common import OutputFormat, StaleOption, StoreOption, app, fail, format_option, open_store
 from triage.exitcodes import Exit
 
 
 # -- survival: fit, cohorts, survival (triage/survival, triage/report/survival.py, docs/survival.md) --
-ByOption = typer.Option("model", "--by", help="Cohort keys, comma-separated, among model, firmware, bus, user_capacity_bytes.")
+ByOption = typer.Option("model", "--by", metavar="KEYS", help="Cohort keys, comma-separated, among model, firmware, bus, user_capacity_bytes.")
 
 
 class Events(str, Enum):
@@ -27,18 +27,19 @@ EventsOption = typer.Option(
     Events.failures, "--events",
     help="Events for curves, Weibull, compare and fit: failures (failed removals; proactive pulls "
          "censored) or replacements (failed or proactive). cohorts shows AFR and ARR either way.")
-MttfOption = typer.Option(None, "--mttf", min=1.0, help="Datasheet MTTF in hours: show the AFR it implies.")
+MttfOption = typer.Option(None, "--mttf", min=1.0, metavar="HOURS", help="Datasheet MTTF in hours: show the AFR it implies.")
 
 
 def _survival_call(function, *args, **kwargs):
     """Run a survival-layer function; its known errors become one line and the right exit code."""
     from triage.survival.cohorts import UnknownCohort
     from triage.survival.cox import CoxFitError
+    from triage.survival.landmark import FitError
     from triage.survival.run import EmptyStore
 
     try:
         return function(*args, **kwargs)
-    except (EmptyStore, CoxFitError) as exc:
+    except (EmptyStore, CoxFitError, FitError) as exc:
         fail(str(exc), Exit.FAILURE)
     except UnknownCohort as exc:
         fail(str(exc), Exit.USAGE)
@@ -48,20 +49,27 @@ def _survival_call(function, *args, **kwargs):
         fail(str(exc), Exit.FAILURE)
 
 
-def _survival_notes(obs) -> None:
-    """Data-quality exclusions and drives back from repair, on stderr."""
+def _survival_notes(obs, as_of=None, command: str = "", stale_hours: float | None = None) -> None:
+    """The as-of line, a stale-data warning, data-quality exclusions and drives back from repair, on stderr."""
     from triage.report.survival import exclusion_lines, return_lines
+    from triage.risk.rank import stale_warning
+    from triage.risk.score import moment_text
 
+    if command:
+        typer.echo(f"{command}: as of {moment_text(as_of)} (newest capture used)", err=True)
+        warning = stale_warning(as_of, stale_hours=stale_hours)
+        if warning:
+            typer.echo(f"warning: {warning}", err=True)
     for line in [*exclusion_lines(obs.exclusions), *return_lines(obs.returns)]:
         typer.echo(line, err=True)
 
 
 @app.command(epilog="Example: triage fit --horizon-days 30 --by model --store /srv/triage/store")
 def fit(
-    horizon_days: float = typer.Option(30.0, "--horizon-days", min=1.0, help="Predict failure within this many days."),
+    horizon_days: float = typer.Option(30.0, "--horizon-days", min=1.0, metavar="DAYS", help="Predict failure within this many days."),
     by: str = ByOption,
     events: Events = EventsOption,
-    fmt: str = typer.Option("table", "--format", help="table | json (summary of the fitted model)."),
+    fmt: OutputFormat = format_option("CSV: the covariate rate ratios; JSON: the whole summary"),
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Fit the fleet risk model (AFR, Weibull, stratified Cox) and save it under <store>/models."""
@@ -69,8 +77,6 @@ def fit(
     from triage.report.survival import exclusion_lines, render_fit
     from triage.survival.run import fit_store
 
-    if fmt not in ("table", "json"):
-        fail(f"--format must be table or json, not {fmt!r}", Exit.USAGE)
     target = open_store(store)
     with progress_bar("reading snapshots") as update:
         model, path = _survival_call(fit_store, target, horizon_days=horizon_days, by=by,
@@ -84,11 +90,12 @@ def fit(
 @app.command(epilog="Example: triage cohorts --by model,firmware --vs-fleet --format csv --mttf 2500000")
 def cohorts(
     by: str = ByOption,
-    fmt: str = typer.Option("table", "--format", help="table | csv | json"),
+    fmt: OutputFormat = format_option(),
     mttf: Optional[float] = MttfOption,
     vs_fleet: bool = typer.Option(False, "--vs-fleet", help="Add each cohort's failure-rate ratio against the "
                                                             "rest of the fleet, exact 95 % range and p-value."),
     events: Events = EventsOption,
+    stale_hours: float = StaleOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
     """One row per cohort: AFR and ARR with exact 95 % limits, life phase and Weibull shape, then drives,
@@ -97,25 +104,25 @@ def cohorts(
     from triage.report.survival import render_cohorts
     from triage.survival.run import cohorts_of_store
 
-    if fmt not in ("table", "csv", "json"):
-        fail(f"--format must be table, csv or json, not {fmt!r}", Exit.USAGE)
+    target = open_store(store)
     with progress_bar("reading snapshots") as update:
-        table, obs = _survival_call(cohorts_of_store, open_store(store), by=by,
+        table, obs = _survival_call(cohorts_of_store, target, by=by,
                                     count_proactive=events is Events.replacements, mttf_hours=mttf,
                                     vs_fleet=vs_fleet, progress=update)
-    _survival_notes(obs)
+    _survival_notes(obs, obs.as_of, "cohorts", stale_hours)
     render_cohorts(table, fmt)
 
 
 @app.command(epilog="Example: triage survival 'QH-HD8T-A' --plot qh-hd8t-a.png --mttf 2500000")
 def survival(
-    cohort: str = typer.Argument(..., help="Cohort label as 'triage cohorts' prints it (same --by)."),
+    cohort: str = typer.Argument(..., metavar="COHORT", help="Cohort label as 'triage cohorts' prints it (same --by)."),
     by: str = ByOption,
-    fmt: str = typer.Option("table", "--format", help="table | json"),
-    plot: Optional[Path] = typer.Option(None, "--plot", help="Also draw Kaplan-Meier with band and Weibull fit "
-                                                             "(.png or .svg, in an existing folder)."),
+    fmt: OutputFormat = format_option("CSV: the survival curve; JSON: everything"),
+    plot: Optional[Path] = typer.Option(None, "--plot", metavar="FILE", help="Also draw Kaplan-Meier with band and "
+                                                                           "Weibull fit (.png or .svg, in an existing folder)."),
     mttf: Optional[float] = MttfOption,
     events: Events = EventsOption,
+    stale_hours: float = StaleOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Survival and cumulative hazard by age (delayed entry), hazard by age band, Weibull fit of one cohort."""
@@ -123,8 +130,6 @@ def survival(
     from triage.report.survival import plot_survival, render_survival
     from triage.survival.run import survival_of_store
 
-    if fmt not in ("table", "json"):
-        fail(f"--format must be table or json, not {fmt!r}", Exit.USAGE)
     if plot is not None and plot.suffix.lower() not in (".png", ".svg"):
         fail(f"{plot}: --plot must name a .png or .svg file", Exit.USAGE)
     if plot is not None and not plot.absolute().parent.is_dir():
@@ -133,16 +138,11 @@ def survival(
         report, obs = _survival_call(survival_of_store, open_store(store), cohort, by=by,
                                      count_proactive=events is Events.replacements, mttf_hours=mttf,
                                      progress=update)
-    _survival_notes(obs)
+    _survival_notes(obs, obs.as_of, "survival", stale_hours)
     render_survival(report, fmt)
     if plot is not None:
         _survival_call(plot_survival, report, plot)
         typer.echo(f"survival: plot written to {plot}", err=True)
-
-
-class CompareFormat(str, Enum):
-    table = "table"
-    json = "json"
 
 
 @app.command(epilog="Example: triage compare 'QH-HD8T-A / QA03' 'QH-HD8T-A / QA02' --by model,firmware")
@@ -150,7 +150,7 @@ def compare(
     a: str = typer.Argument(..., metavar="A", help="Cohort A, as 'triage cohorts' prints it (same --by)."),
     b: str = typer.Argument(..., metavar="B", help="Cohort B, the one A is measured against."),
     by: str = ByOption,
-    fmt: CompareFormat = typer.Option(CompareFormat.table, "--format", help="Output format."),
+    fmt: OutputFormat = format_option("CSV: one row with both sides"),
     events: Events = EventsOption,
     store: Optional[Path] = StoreOption,
 ) -> None:

@@ -13,7 +13,7 @@ from typing import TextIO
 from rich.markup import escape
 from rich.table import Table
 
-from triage.report.survival import _console, _num, _plain, _records, _write_json
+from triage.report.survival import _console, _num, _plain, _records, _write_csv, _write_json
 
 BASELINE = "drive-self-assessment"
 COMBINED = "combined"
@@ -42,9 +42,14 @@ def backtest_record(result) -> dict:
 
 
 def render_backtest(result, fmt: str, out: TextIO | None = None) -> None:
+    """Table, JSON (everything) or CSV (one row per method)."""
     out = out or sys.stdout
+    fmt = getattr(fmt, "value", fmt)
     if fmt == "json":
         _write_json(backtest_record(result), out)
+        return
+    if fmt == "csv":
+        _write_csv(result.methods, out)
         return
     console = _console()
     methods = result.methods.set_index("method")
@@ -129,6 +134,7 @@ FORECAST_KEYS = ("scope", "name", "drives", "expected", "interval_low", "interva
 
 def render_forecast(forecast, fmt: str, out: TextIO | None = None) -> None:
     out = out or sys.stdout
+    fmt = getattr(fmt, "value", fmt)
     rows = [{k: _plain(row[k]) for k in FORECAST_KEYS} for row in forecast.rows.to_dict("records")]
     if fmt == "json":
         _write_json(rows, out)

@@ -1,4 +1,8 @@
-"""Render a ranked drive list as a table (rich), CSV (RFC 4180) or JSON. No computation here."""
+"""Render a ranked drive list as a table (rich), CSV (RFC 4180) or JSON. No computation here.
+
+Every form states the time of the newest capture used ("as of") and carries the drives that
+stopped reporting, so silence never reads as an empty, healthy list.
+"""
 
 from __future__ import annotations
 
@@ -13,39 +17,72 @@ from rich.markup import escape
 from rich.table import Table
 
 from triage.report.console import stdout_console
+from triage.risk.score import moment_text
 
-JSON_FIELDS = ["rank", "serial", "model", "host", "slot", "group", "score", "p_fail", "severity",
-               "category", "action", "rules", "evidence", "power_on_hours", "p_group_loss", "degraded"]
+JSON_FIELDS = ["rank", "state", "first_raised", "severity", "score", "p_fail", "serial", "model", "host",
+               "slot", "group", "category", "categories", "action", "actions", "rules", "evidence",
+               "power_on_hours", "p_group_loss", "degraded", "group_first"]
+#: CSV rows: ranked drives, then one row per drive that stopped reporting (state "not-reporting").
+CSV_FIELDS = ["rank", "state", "first_raised", "severity", "score", "p_fail", "serial", "model", "host",
+              "slot", "group", "category", "action", "rules", "evidence", "power_on_hours", "p_group_loss",
+              "degraded", "last_seen", "as_of"]
+SILENT_FIELDS = ["state", "severity", "first_raised", "serial", "model", "host", "slot", "group", "last_seen"]
+GROUP_FIELDS = ["group", "members", "lost", "tolerance", "tolerance_left", "p_group_loss", "lost_serials",
+                "lost_last_seen", "caution"]
 _STYLE = {"replace-now": "bold red", "replace-soon": "yellow", "watch": "cyan", "check-path": "magenta"}
 
 
 def _plain(value):
-    if isinstance(value, float) and math.isnan(value):
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return None
+    if isinstance(value, pd.Timestamp):
+        return None if pd.isna(value) else value.isoformat()
+    if value is pd.NaT:
         return None
     if hasattr(value, "item"):
         return value.item()
     return value
 
 
-def records(drives: pd.DataFrame) -> list[dict]:
-    return [{f: _plain(row[f]) for f in JSON_FIELDS} for row in drives.to_dict("records")]
+def records(frame: pd.DataFrame, fields: list[str]) -> list[dict]:
+    present = [f for f in fields if f in frame.columns]
+    return [{f: _plain(row[f]) for f in present} for row in frame.to_dict("records")]
 
 
-def render_json(drives: pd.DataFrame, out: TextIO | None = None) -> None:
+def _iso(moment) -> str | None:
+    return None if moment is None else pd.Timestamp(moment).isoformat()
+
+
+def render_json(result, drives: pd.DataFrame, warnings: list[str], out: TextIO | None = None) -> None:
     out = out or sys.stdout  # looked up per call: tests and callers swap sys.stdout
-    json.dump(records(drives), out, indent=2)
+    groups = result.groups
+    degraded = groups[groups["degraded"]] if len(groups) else groups
+    json.dump({
+        "as_of": _iso(result.as_of),
+        "horizon_days": result.horizon_days,
+        "warnings": warnings,
+        "drives": records(drives, JSON_FIELDS),
+        "not_reporting": records(result.silent, SILENT_FIELDS),
+        "degraded_groups": records(degraded, GROUP_FIELDS),
+    }, out, indent=2)
     out.write("\n")
 
 
-def render_csv(drives: pd.DataFrame, out: TextIO | None = None) -> None:
+def render_csv(result, drives: pd.DataFrame, out: TextIO | None = None) -> None:
     out = out or sys.stdout
     from triage.risk.tickets import neutralise  # same formula-injection guard as the ticket file
 
+    as_of = _iso(result.as_of) or ""
     writer = csv.writer(out, quoting=csv.QUOTE_MINIMAL, lineterminator="\r\n")
-    writer.writerow(JSON_FIELDS)
-    for rec in records(drives):
-        cells = [" ".join(v) if f == "rules" else "; ".join(v) if f == "evidence" else v
-                 for f, v in rec.items()]
+    writer.writerow(CSV_FIELDS)
+    rows = [dict(rec, as_of=as_of) for rec in records(drives, JSON_FIELDS)]
+    rows += [dict(rec, as_of=as_of) for rec in records(result.silent, SILENT_FIELDS)]
+    for rec in rows:
+        cells = [rec.get(f) for f in CSV_FIELDS]
+        cells = [" ".join(v) if f == "rules" and v else "; ".join(v) if f == "evidence" and v else v
+                 for f, v in zip(CSV_FIELDS, cells)]
         writer.writerow([neutralise("" if c is None else c) for c in cells])
 
 
@@ -57,6 +94,7 @@ def _cells(d) -> dict[str, str]:
     """The text of one drive's cells (rich markup, firmware-derived strings escaped)."""
     sev = d.severity or "-"
     where = f"{escape(str(d.host or '?'))}/{escape(str(d.slot or '?'))}"
+    state = "" if not d.state else (d.state if d.state == "new" else f"{d.state} since {d.first_raised}")
     return {
         "rank": str(d.rank),
         "where": where,
@@ -65,24 +103,33 @@ def _cells(d) -> dict[str, str]:
         "age": "" if pd.isna(d.age_days) else f"{d.age_days / 365.25:.1f} y",
         "p": "n/a" if pd.isna(d.p_fail) else f"{d.p_fail:.1%}",
         "severity": f"[{_STYLE[sev]}]{sev}[/]" if sev in _STYLE else sev,
+        "score": f"score {d.score:.3f}",
+        "state": f"[bold]{state}[/bold]" if d.state == "new" else state,
         "evidence": "\n".join(escape(e) for e in d.evidence) or "-",
         "action": f"[bold red]{escape(d.action)}[/]" if d.degraded else escape(d.action),
     }
 
 
-def render_table(drives: pd.DataFrame, horizon_days: float | None) -> None:
+def _title(result, warnings: list[str]) -> str:
+    title = f"Drives to look at, by action tier then score; as of {moment_text(result.as_of)}"
+    return title + (f" [bold red](see {len(warnings)} warning(s) below)[/]" if warnings else "")
+
+
+def render_table(result, drives: pd.DataFrame, warnings: list[str]) -> None:
+    horizon_days = result.horizon_days
     p_head = f"P(fail {horizon_days:g} d)" if horizon_days else "P(fail)"
     console = stdout_console()
-    table = Table(title="Drives to look at, most urgent first", title_justify="left", expand=False)
+    table = Table(title=_title(result, warnings), title_justify="left", expand=False)
     if console.width >= WIDE_COLUMNS:
-        for head in ("#", "where", "drive", "age", p_head, "severity"):
+        for head in ("#", "where", "drive", "age", p_head, "tier / score", "flag"):
             table.add_column(head, no_wrap=True)
         table.add_column("evidence", ratio=3)
         table.add_column("what to do", ratio=2)
         for d in drives.itertuples(index=False):
             c = _cells(d)
             where = c["where"] + (f"\n{c['group']}" if c["group"] else "")
-            table.add_row(c["rank"], where, c["drive"], c["age"], c["p"], c["severity"], c["evidence"], c["action"])
+            table.add_row(c["rank"], where, c["drive"], c["age"], c["p"], f"{c['severity']}\n{c['score']}",
+                          c["state"], c["evidence"], c["action"])
     else:
         table.add_column("#", no_wrap=True)
         table.add_column("where / drive", no_wrap=True, overflow="ellipsis", max_width=22)
@@ -91,15 +138,27 @@ def render_table(drives: pd.DataFrame, horizon_days: float | None) -> None:
         for d in drives.itertuples(index=False):
             c = _cells(d)
             where = "\n".join(x for x in (c["where"], c["group"], c["drive"]) if x)
-            risk = f"{c['severity']}\n{p_head}: {c['p']}\nage {c['age'] or '?'}"
+            risk = "\n".join(x for x in (c["severity"], c["score"], f"{p_head}: {c['p']}",
+                                         f"age {c['age'] or '?'}", c["state"]) if x)
             table.add_row(c["rank"], where, risk, f"{c['evidence']}\n[bold]-> {c['action']}[/bold]")
     console.print(table)
+    if warnings:
+        console.print("\n".join(f"[bold red]warning:[/] {escape(line)}" for line in warnings))
+    flagged = result.silent[result.silent["severity"].notna()] if len(result.silent) else result.silent
+    for d in flagged.itertuples(index=False):
+        console.print(f"[bold red]not reporting, flagged before:[/] {escape(str(d.serial))} at "
+                      f"{escape(str(d.host or '?'))}/{escape(str(d.slot or '?'))}: {escape(str(d.severity))} "
+                      f"since {d.first_raised}, last seen {moment_text(d.last_seen)}")
 
 
-def render_ranked(drives: pd.DataFrame, fmt: str, horizon_days: float | None = None) -> None:
+def render_ranked(result, drives: pd.DataFrame, fmt: str, warnings: list[str] = ()) -> None:
+    """``drives``: the rows to show (a filtered slice of ``result.drives``); ``warnings``:
+    rank.silence_warnings. ``fmt``: table, csv or json."""
+    fmt = getattr(fmt, "value", fmt)
+    warnings = list(warnings)
     if fmt == "json":
-        render_json(drives)
+        render_json(result, drives, warnings)
     elif fmt == "csv":
-        render_csv(drives)
+        render_csv(result, drives)
     else:
-        render_table(drives, horizon_days)
+        render_table(result, drives, warnings)

@@ -62,15 +62,20 @@ def _write_json(obj, out: TextIO) -> None:
 WIDE_COLUMNS = 140
 
 
+def _write_csv(table: pd.DataFrame, out: TextIO) -> None:
+    writer = csv.writer(out, lineterminator="\r\n")  # RFC 4180 records end in CRLF
+    writer.writerow(table.columns)
+    for row in _records(table):
+        writer.writerow(["" if v is None else v for v in row.values()])
+
+
 def render_cohorts(table: pd.DataFrame, fmt: str, out: TextIO | None = None) -> None:
     out = out or sys.stdout
+    fmt = getattr(fmt, "value", fmt)
     if fmt == "json":
         _write_json(_records(table), out)
     elif fmt == "csv":
-        writer = csv.writer(out, lineterminator="\r\n")  # RFC 4180 records end in CRLF
-        writer.writerow(table.columns)
-        for row in _records(table):
-            writer.writerow(["" if v is None else v for v in row.values()])
+        _write_csv(table, out)
     else:
         _console().print(cohort_grid(table, _console().width))
 
@@ -188,9 +193,14 @@ def survival_record(report) -> dict:
 
 
 def render_survival(report, fmt: str, out: TextIO | None = None, console=None) -> None:
+    """Table, JSON (everything), or CSV (the survival curve, one row per failure age)."""
     out = out or sys.stdout
+    fmt = getattr(fmt, "value", fmt)
     if fmt == "json":
         _write_json(survival_record(report), out)
+        return
+    if fmt == "csv":
+        _write_csv(report.curves.table, out)
         return
     console = console or _console()
     w = report.weibull
@@ -331,8 +341,19 @@ def verdict(c) -> str:
 
 
 def render_compare(c, fmt: str, out: TextIO | None = None, console=None) -> None:
+    fmt = getattr(fmt, "value", fmt)
     if fmt == "json":
         _write_json(compare_record(c), out or sys.stdout)
+        return
+    if fmt == "csv":  # one row: the sides' figures flattened to a_side_* / b_side_*
+        record = compare_record(c)
+        flat = {}
+        for key, value in record.items():
+            if isinstance(value, dict):
+                flat.update({f"{key}_{k}": v for k, v in value.items()})
+            else:
+                flat[key] = ",".join(value) if isinstance(value, list) else value
+        _write_csv(pd.DataFrame([flat]), out or sys.stdout)
         return
     console = console or _console()
     r = c.rates
@@ -373,9 +394,14 @@ def fit_record(model, path: Path) -> dict:
 
 
 def render_fit(model, path: Path, fmt: str, out: TextIO | None = None) -> None:
+    """Table, JSON (everything), or CSV (the covariate hazard ratios)."""
     out = out or sys.stdout
+    fmt = getattr(fmt, "value", fmt)
     if fmt == "json":
         _write_json(fit_record(model, path), out)
+        return
+    if fmt == "csv":
+        _write_csv(model.coefficients().reset_index(names="covariate"), out)
         return
     console = _console()
     window = model.data_window_

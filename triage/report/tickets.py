@@ -4,7 +4,9 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from triage.risk.score import moment_text
 
-def summary_line(counts, out: Path) -> str:
-    return (f"tickets: {counts.new} new, {counts.ongoing} ongoing, {counts.cleared} cleared "
-            f"-> {out}")
+
+def summary_line(counts, out: Path, as_of=None) -> str:
+    return (f"tickets (as of {moment_text(as_of)}): {counts.new} new, {counts.ongoing} ongoing, "
+            f"{counts.not_reporting} not-reporting, {counts.cleared} cleared -> {out}")

@@ -10,6 +10,7 @@ from __future__ import annotations
 import fnmatch
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
+from pathlib import Path
 from typing import Callable, Sequence
 
 import pandas as pd
@@ -25,38 +26,58 @@ from triage.risk.score import (
     SEVERITIES,
     SEVERITY_WEIGHT,
     action_text,
+    degraded_caution,
+    drive_actions,
+    moment_text,
     risk_score,
     severity_name,
+    tier_index,
 )
 
 #: Days of captures looked at to notice a member that went missing (at least this many).
 GROUP_LOOKBACK_DAYS = 7
+#: A report whose newest capture is older than this warns; a drive, host or site whose newest
+#: capture is this much older than the fleet's newest is "not reporting". Common practice, no
+#: source: a nightly capture plus a missed night's slack.
+STALE_HOURS = 36.0
 
 RANK_COLUMNS = [
-    "rank", "serial", "model", "host", "slot", "group", "power_on_hours", "age_days", "score",
-    "p_fail", "severity", "category", "action", "rules", "evidence", "p_group_loss", "degraded",
-    "group_importance",
+    "rank", "serial", "model", "host", "slot", "group", "power_on_hours", "age_days", "severity",
+    "score", "p_fail", "category", "categories", "action", "actions", "rules", "evidence",
+    "p_group_loss", "degraded", "group_importance", "p_member", "group_first", "state", "first_raised",
+    "taken_at",
 ]
+SILENT_COLUMNS = ["serial", "model", "host", "slot", "group", "last_seen"]
+#: Silent drives as reported: with ``state`` not-reporting and, given a ticket export, the flag
+#: each had open (``severity``, ``first_raised``).
+SILENT_REPORT_COLUMNS = SILENT_COLUMNS + ["state", "severity", "first_raised"]
+NOT_REPORTING_COLUMNS = ["scope", "name", "hosts", "drives", "last_seen"]
+_FLAG_COLUMNS = ["serial", "severity", "category", "categories", "actions", "rules", "evidence"]
 
 
 @dataclass
 class RankResult:
-    drives: pd.DataFrame  # RANK_COLUMNS, best first
-    groups: pd.DataFrame  # groups.group_risk's table
+    drives: pd.DataFrame  # RANK_COLUMNS, most urgent first
+    groups: pd.DataFrame  # groups.group_risk's table, plus who was lost and when
     model_used: bool
     horizon_days: float | None
-    as_of: datetime | None
+    as_of: datetime | None  # the newest capture used
     notes: list[str] = field(default_factory=list)
+    silent: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=SILENT_REPORT_COLUMNS))
+    not_reporting: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=NOT_REPORTING_COLUMNS))
+    removed: frozenset = frozenset()  # serials in the removal log
 
 
 def summarise_flags(flags: pd.DataFrame) -> pd.DataFrame:
-    """One row per serial: worst severity, its category, rule ids and evidence (worst first)."""
-    columns = ["serial", "severity", "category", "rules", "evidence"]
+    """One row per serial: most urgent severity and its category, every category that fired, the
+    actions they ask for (score.drive_actions), rule ids and evidence (most urgent first)."""
     if flags is None or flags.empty:
-        return pd.DataFrame(columns=columns)
-    order = {name: i for i, name in enumerate(SEVERITIES)}
+        return pd.DataFrame(columns=_FLAG_COLUMNS)
     flags = flags.assign(severity=flags["severity"].map(severity_name))
-    flags = flags.assign(_order=flags["severity"].map(lambda s: order.get(s, len(order))))
+    if "category" not in flags:
+        flags = flags.assign(category=None)
+    flags = flags.assign(category=flags["category"].map(severity_name))
+    flags = flags.assign(_order=flags["severity"].map(tier_index))
     flags = flags.sort_values(["serial", "_order", "rule_id"], kind="stable")
     rows = []
     for serial, part in flags.groupby("serial", sort=True):
@@ -65,11 +86,13 @@ def summarise_flags(flags: pd.DataFrame) -> pd.DataFrame:
         rows.append({
             "serial": serial,
             "severity": part["severity"].iloc[0],
-            "category": part["category"].iloc[0] if "category" in part else None,
+            "category": part["category"].iloc[0],
+            "categories": list(dict.fromkeys(c for c in part["category"] if c)),
+            "actions": drive_actions(zip(part["severity"], part["category"])),
             "rules": list(dict.fromkeys(part["rule_id"].astype(str))),
             "evidence": evidence,
         })
-    return pd.DataFrame(rows, columns=columns)
+    return pd.DataFrame(rows, columns=_FLAG_COLUMNS)
 
 
 def rank_drives(
@@ -81,21 +104,23 @@ def rank_drives(
     lost: pd.DataFrame | None = None,
     config: GroupConfig | None = None,
 ) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """Score and order drives (see triage.risk.score); returns (drives, groups).
+    """Order drives by action tier, then score (see triage.risk.score); returns (drives, groups).
 
     ``latest``: one row per serial (snapshot columns). ``flags``: rule firings (serial, rule_id,
     severity, category, title, evidence). ``p_fail``: P(fail within ``horizon_days``) by serial, or
-    None when there is no model.
+    None when there is no model. ``lost``: groups.lost_members (group, serial, host, slot, last_seen).
     """
     config = config or GroupConfig()
-    lost = lost if lost is not None else pd.DataFrame(columns=["group", "serial"])
+    lost = lost if lost is not None else pd.DataFrame(columns=["group", "serial", "host", "slot", "last_seen"])
     drives = latest.reset_index(drop=True).copy()
-    summary = summarise_flags(flags)
-    drives = drives.merge(summary, on="serial", how="left")
-    drives["rules"] = [r if isinstance(r, list) else [] for r in drives["rules"]]
-    drives["evidence"] = [e if isinstance(e, list) else [] for e in drives["evidence"]]
-    drives["severity"] = drives["severity"].astype(object).where(drives["severity"].notna(), None)
-    drives["category"] = drives["category"].astype(object).where(drives["category"].notna(), None)
+    for column in ("model", "host", "slot", "group", "taken_at"):
+        if column not in drives:
+            drives[column] = None
+    drives = drives.merge(summarise_flags(flags), on="serial", how="left")
+    for column in ("categories", "actions", "rules", "evidence"):
+        drives[column] = [v if isinstance(v, list) else [] for v in drives[column]]
+    for column in ("severity", "category"):
+        drives[column] = drives[column].astype(object).where(drives[column].notna(), None)
     if p_fail is not None:
         drives["p_fail"] = drives["serial"].map(p_fail).astype(float)
     else:
@@ -111,32 +136,79 @@ def rank_drives(
         p_member.append(member_probability(p_window, row.severity))
     drives["p_member"] = p_member
     groups, importance = group_risk(drives[["serial", "group", "p_member"]], lost, config)
+    groups = _with_lost_members(groups, lost)
 
     by_group = groups.set_index("group")
     drives["group_importance"] = drives["serial"].map(importance).fillna(0.0)
     drives["p_group_loss"] = drives["group"].map(by_group["p_group_loss"]).astype(float)
     drives["degraded"] = drives["group"].map(by_group["degraded"]).eq(True)
-    lost_n = drives["group"].map(by_group["lost"]).fillna(0).astype(int)
     drives["score"] = [
         risk_score(SEVERITY_WEIGHT.get(s, 0.0), p, g)
         for s, p, g in zip(drives["severity"], drives["p_fail"], drives["group_importance"])
     ]
+    drives["group_first"], group_notes = _first_in_degraded_group(drives, groups)
     drives["action"] = [
-        action_text(s, c, d, g, n)
-        for s, c, d, g, n in zip(drives["severity"], drives["category"], drives["degraded"],
-                                 drives["group"], lost_n)
+        action_text(actions, _caution_for(degraded, group, note, by_group))
+        for actions, degraded, group, note in zip(drives["actions"], drives["degraded"], drives["group"], group_notes)
     ]
     hours = drives["power_on_hours"] if "power_on_hours" in drives else pd.Series(float("nan"), index=drives.index)
     drives["power_on_hours"] = hours
     drives["age_days"] = hours / 24.0
-    for column in ("model", "host", "slot", "group"):
-        if column not in drives:
-            drives[column] = None
-    order = drives.assign(_p=drives["p_fail"].fillna(-1.0))
-    drives = order.sort_values(["score", "_p", "serial"], ascending=[False, False, True], kind="stable")
+    drives["state"] = None
+    drives["first_raised"] = None
+    order = drives.assign(_tier=drives["severity"].map(tier_index), _p=drives["p_fail"].fillna(-1.0),
+                          _g=drives["group_first"].astype(float).fillna(0.0))
+    drives = order.sort_values(["_tier", "score", "_p", "_g", "serial"],
+                               ascending=[True, False, False, True, True], kind="stable")
     drives = drives.reset_index(drop=True)
     drives["rank"] = range(1, len(drives) + 1)
+    drives["group_first"] = pd.Series([None if pd.isna(x) else int(x) for x in drives["group_first"]],
+                                      index=drives.index, dtype=object)
     return drives[RANK_COLUMNS], groups
+
+
+def _with_lost_members(groups: pd.DataFrame, lost: pd.DataFrame) -> pd.DataFrame:
+    """Add to each group the members it lost and when each was last seen."""
+    lost_by_group = {g: part for g, part in lost.groupby("group")} if len(lost) else {}
+    groups = groups.copy()
+    groups["lost_serials"] = [list(lost_by_group[g]["serial"]) if g in lost_by_group else [] for g in groups["group"]]
+    groups["lost_last_seen"] = [
+        list(lost_by_group[g]["last_seen"]) if g in lost_by_group and "last_seen" in lost_by_group[g] else []
+        for g in groups["group"]]
+    groups["caution"] = [
+        degraded_caution(g, lost_by_group.get(g), n) if d else None
+        for g, n, d in zip(groups["group"], groups["lost"], groups["degraded"])]
+    return groups
+
+
+def _caution_for(degraded: bool, group, note: str | None, by_group: pd.DataFrame) -> str | None:
+    """The degraded group's caution, plus which at-risk member to deal with first."""
+    if not degraded:
+        return None
+    caution = by_group.loc[group, "caution"]
+    return f"{caution}; {note}" if note else caution
+
+
+def _first_in_degraded_group(drives: pd.DataFrame, groups: pd.DataFrame) -> tuple[list, list]:
+    """For flagged members of a degraded group with two or more of them: the order to deal with them.
+
+    A degraded group has fewer members to lose than it was built for, so the member whose failure
+    would lose data sooner is the one more likely to fail within the rebuild window (``p_member``,
+    groups.member_probability); it goes first. Returns (position or None, note or None) per drive.
+    """
+    positions, notes = [None] * len(drives), [None] * len(drives)
+    degraded = set(groups.loc[groups["degraded"], "group"]) if len(groups) else set()
+    at_risk = drives[drives["group"].isin(degraded) & (drives["rules"].map(len) > 0)]
+    for group, part in at_risk.groupby("group"):
+        if len(part) < 2:
+            continue
+        part = part.sort_values(["p_member", "score", "serial"], ascending=[False, False, True])
+        shares = ", ".join(f"{s} {p:.1%}" for s, p in zip(part["serial"], part["p_member"]))
+        for position, index in enumerate(part.index, start=1):
+            positions[index] = position
+            notes[index] = (f"at-risk member {position} of {len(part)} in {group}, in the order to deal with them "
+                            f"(P(fail during the rebuild): {shares})")
+    return positions, notes
 
 
 def site_of(host: str | None) -> str | None:
@@ -191,12 +263,25 @@ def rank_store(
     evaluate: Callable | None = None,
     model=_AUTO,
     config: GroupConfig | None = None,
+    tickets: Path | None = None,
+    silent_hours: float = STALE_HOURS,
 ) -> RankResult:
-    """Rank every current drive in ``store``.
+    """Rank every reporting drive in ``store``; list the drives, hosts and sites that went silent.
 
     Reads: snapshot partitions of the last max(ruleset.window_days, GROUP_LOOKBACK_DAYS) + 1 days,
-    the removal log, and the newest saved model (``model=None`` forces a rules-only run).
+    each drive's last sighting (Store.last_rows: a few columns, one day in memory at a time), the
+    removal log, the newest saved model (``model=None`` forces a rules-only run) and, when given,
+    the last ticket export (``tickets``: each flag's state new / ongoing and the day first raised).
+    A drive whose newest capture is more than ``silent_hours`` older than the fleet's newest is not
+    ranked: it is "not reporting" until it reports again, is removed, or another drive takes its slot.
     """
+    from triage.risk.tickets import (  # noqa: PLC0415  (same layer)
+        TICKET_COLUMNS,
+        flag_states,
+        read_tickets,
+        silent_flags,
+    )
+
     notes: list[str] = []
     if evaluate is None:
         from triage.rules import evaluate  # noqa: PLC0415  (rules layer, to our left)
@@ -208,14 +293,25 @@ def rank_store(
         return RankResult(empty, pd.DataFrame(), model is not None, getattr(model, "horizon_days", None), None,
                           notes + ["the store holds no captures yet"])
     newest = datetime.strptime(days[-1], "%Y-%m-%d").replace(tzinfo=timezone.utc)
-    lookback = max(int(getattr(ruleset, "window_days", 0) or 0), GROUP_LOOKBACK_DAYS)
+    # enough history for the rules, for a missing group member, and to see every drive that
+    # reported within ``silent_hours``
+    lookback = max(int(getattr(ruleset, "window_days", 0) or 0), GROUP_LOOKBACK_DAYS, int(silent_hours // 24) + 1)
     history = store.read("snapshots", since=newest - timedelta(days=lookback))
     removals = store.read("removals")
     as_of = history["taken_at"].max().to_pydatetime()
 
+    # each drive's last sighting: recent ones from the history read above, older ones from the store
+    detail = ["serial", "taken_at", "model", "host", "slot", "group"]
     latest = history.sort_values("taken_at").groupby("serial", as_index=False).last()
+    recent = latest[detail]
+    removed = frozenset(removals["serial"]) if len(removals) else frozenset()
+    last_seen = store.last_times("snapshots", "serial")
+    older = last_seen[~last_seen["serial"].isin(set(recent["serial"]) | removed)]  # removed: never silent
+    sightings = pd.concat([recent, store.last_rows("snapshots", "serial", detail[2:], last=older)],
+                          ignore_index=True)
+    silent = silent_drives(sightings, removals, as_of, silent_hours)
     lost = lost_members(history, removals)
-    gone = set(lost["serial"])
+    gone = set(lost["serial"]) | set(silent["serial"])
     if len(removals):
         removed_at = removals.groupby("serial")["removed_at"].max()
         left = latest["serial"].map(removed_at) >= latest["taken_at"]
@@ -230,7 +326,99 @@ def rank_store(
     else:
         notes.append("no saved survival model: ranking on rules alone (p_fail is empty)")
     drives, groups = rank_drives(latest, flags, p_fail, horizon_days=horizon, lost=lost, config=config)
-    return RankResult(drives, groups, model is not None, horizon, as_of, notes)
+    previous = read_tickets(tickets) if tickets is not None else pd.DataFrame(columns=TICKET_COLUMNS)
+    if tickets is not None:
+        drives = flag_states(drives, previous, as_of)
+    summary = not_reporting_summary(silent, sightings, removals)
+    silent = silent_flags(silent, previous)[SILENT_REPORT_COLUMNS]
+    return RankResult(drives, groups, model is not None, horizon, as_of, notes, silent, summary, removed)
+
+
+def silent_drives(sightings: pd.DataFrame, removals: pd.DataFrame, as_of: datetime,
+                  silent_hours: float = STALE_HOURS) -> pd.DataFrame:
+    """Drives whose last capture is more than ``silent_hours`` before ``as_of``, not removed
+    (the removal log) and not replaced (another drive seen later in the same host and slot).
+
+    ``sightings``: each serial's newest capture (Store.last_rows), columns SILENT_COLUMNS with
+    ``taken_at`` for ``last_seen``.
+    """
+    frame = sightings.rename(columns={"taken_at": "last_seen"})
+    if frame.empty:
+        return pd.DataFrame(columns=SILENT_COLUMNS)
+    cutoff = pd.Timestamp(as_of) - pd.Timedelta(hours=silent_hours)
+    quiet = frame[frame["last_seen"] < cutoff]
+    if len(removals):
+        quiet = quiet[~quiet["serial"].isin(set(removals["serial"]))]
+    placed = frame.dropna(subset=["host", "slot"])
+    newest_in_slot = placed.groupby(["host", "slot"])["last_seen"].max()
+    slot_newest = pd.Series([newest_in_slot.get((h, s)) for h, s in zip(quiet["host"], quiet["slot"])],
+                            index=quiet.index, dtype=object)
+    replaced = [isinstance(n, pd.Timestamp) and n > seen for n, seen in zip(slot_newest, quiet["last_seen"])]
+    quiet = quiet[~pd.Series(replaced, index=quiet.index, dtype=bool)]
+    return quiet.sort_values(["host", "slot", "serial"], na_position="last")[SILENT_COLUMNS].reset_index(drop=True)
+
+
+def not_reporting_summary(silent: pd.DataFrame, sightings: pd.DataFrame, removals: pd.DataFrame) -> pd.DataFrame:
+    """Roll silent drives up: a site when all its hosts are silent, a host when all its drives are,
+    otherwise the drive. Columns NOT_REPORTING_COLUMNS; ``last_seen`` is the newest capture of any
+    of its drives."""
+    if silent.empty:
+        return pd.DataFrame(columns=NOT_REPORTING_COLUMNS)
+    known = sightings[~sightings["serial"].isin(set(removals["serial"]) if len(removals) else set())]
+    known = known.assign(site=known["host"].map(site_of))
+    quiet = silent.assign(site=silent["host"].map(site_of))
+    quiet_serials = set(quiet["serial"])
+    host_silent = known.groupby("host")["serial"].agg(lambda s: set(s) <= quiet_serials)
+    site_silent = known.groupby("site")["host"].agg(lambda h: all(host_silent.get(x, False) for x in set(h)))
+    rows = []
+    for site, part in quiet.groupby("site"):
+        if site_silent.get(site, False):
+            rows.append(("site", site, part["host"].nunique(), len(part), part["last_seen"].max()))
+            continue
+        for host, drives in part.groupby("host"):
+            if host_silent.get(host, False):
+                rows.append(("host", host, 1, len(drives), drives["last_seen"].max()))
+            else:
+                rows.extend(("drive", f"{d.serial} at {host}/{d.slot if isinstance(d.slot, str) else '?'}", 1, 1,
+                             d.last_seen) for d in drives.itertuples(index=False))
+    orphans = quiet[quiet["host"].isna()]
+    rows.extend(("drive", f"{d.serial} at ?", 0, 1, d.last_seen) for d in orphans.itertuples(index=False))
+    return pd.DataFrame(rows, columns=NOT_REPORTING_COLUMNS)
+
+
+def data_age_hours(as_of: datetime | None, now: datetime | None = None) -> float | None:
+    """Hours between the newest capture and ``now``; None when there is no capture at all."""
+    if as_of is None:
+        return None
+    now = now or datetime.now(timezone.utc)
+    return (pd.Timestamp(now) - pd.Timestamp(as_of)).total_seconds() / 3600.0
+
+
+def stale_warning(as_of: datetime | None, *, now: datetime | None = None,
+                  stale_hours: float | None = STALE_HOURS) -> str | None:
+    """A warning when the newest capture is older than ``stale_hours`` (None: not checked)."""
+    age = data_age_hours(as_of, now)
+    if stale_hours is None or age is None or age <= stale_hours:
+        return None
+    return (f"the newest capture is {age:.0f} h old (as of {moment_text(as_of)}; limit {stale_hours:g} h): "
+            "captures may have stopped arriving")
+
+
+def silence_warnings(result: RankResult, *, now: datetime | None = None,
+                     stale_hours: float | None = STALE_HOURS) -> list[str]:
+    """What the report cannot see: no capture at all, a newest capture older than ``stale_hours``
+    (None: not checked), and each site, host or drive not reporting. Empty when all is heard;
+    otherwise the run's exit code is Exit.NOT_REPORTING."""
+    if result.as_of is None:
+        return ["no capture in the store at all: nothing is reporting"]
+    stale = stale_warning(result.as_of, now=now, stale_hours=stale_hours)
+    lines = [stale] if stale else []
+    for row in result.not_reporting.itertuples(index=False):
+        size = (f"{row.hosts} host(s), {row.drives} drive(s)" if row.scope == "site"
+                else f"{row.drives} drive(s)" if row.scope == "host" else "")
+        lines.append(f"not reporting: {row.scope} {row.name}" + (f" ({size})" if size else "")
+                     + f", last seen {moment_text(row.last_seen)}")
+    return lines
 
 
 def _latest_model(store, notes: list[str]):

@@ -1,41 +1,54 @@
-"""One risk score per drive, and the action the on-call sysadmin should take.
+"""Action tiers, one risk score per drive, and the actions the on-call sysadmin should take.
 
-The score (docs/ranking.md) combines three numbers in [0, 1] as independent reasons to act::
+Order (docs/ranking.md is the one definition): by action tier first (``TIERS``: replace now,
+replace soon, check the path, watch; drives no rule flagged come last), then by the score inside
+a tier. The score combines three numbers in [0, 1] as independent reasons to act::
 
     score = 1 - (1 - w_severity) * (1 - p_fail) * (1 - g)
 
-* ``w_severity``: weight of the drive's worst rule severity (``SEVERITY_WEIGHT``; our choice);
+* ``w_severity``: weight of the drive's most urgent rule severity (``SEVERITY_WEIGHT``; our choice);
 * ``p_fail``: the model's P(fail within H days); 0 when no model is saved;
 * ``g``: what replacing the drive removes from its group's loss probability
   (``groups.group_risk``: member importance).
 
 It is increasing in each of the three (each factor ``1 - x`` shrinks as ``x`` grows), stays in
 [0, 1], equals ``w_severity`` for a rules-only run on a lone drive, and lets a strong reason win
-without the others having to agree.
+without the others having to agree. Inside one tier ``w_severity`` is the same for every drive,
+so the score orders them by model probability and group importance.
 """
 
 from __future__ import annotations
 
+from typing import Iterable
+
 import pandas as pd
 
-#: Ordered worst first; "check-path" means the cable/backplane/controller, not the drive.
-SEVERITIES = ("replace-now", "replace-soon", "watch", "check-path")
+#: Action tiers, most urgent first. "check-path" (cable, backplane, controller) comes before
+#: "watch": it is work to do tonight, even though it points away from the drive.
+TIERS = ("replace-now", "replace-soon", "check-path", "watch")
+#: Rule severities the risk layer knows, in tier order (filters and group priors use them).
+SEVERITIES = TIERS
 
 #: Our choice: replace-now below 1 so group and model evidence still separate replace-now drives.
 SEVERITY_WEIGHT = {"replace-now": 0.9, "replace-soon": 0.6, "watch": 0.3, "check-path": 0.1, None: 0.0}
 
 DEGRADED_CAUTION = (
-    "group {group} is degraded ({lost} member(s) lost): do not pull a second drive from this group "
+    "group {group} is degraded ({lost}): do not pull a second drive from this group "
     "before the rebuild finishes; follow the site's change procedure"
 )
 
-_ACTIONS = {
+#: One action per kind of finding. A drive gets the action of every category that fired.
+ACTIONS = {
+    "check-path": "check the path first: inspect, reseat or replace the cable / backplane port / controller",
     "replace-now": "replace this drive now (schedule a swap today)",
     "replace-soon": "order a spare and replace this drive within the week",
+    "thermal": "check the bay's cooling (airflow, fans, ambient temperature)",
     "watch": "keep watching; no swap yet",
-    "check-path": "inspect, reseat or replace the cable / backplane port / controller; do not pull the drive",
-    None: "no action",
 }
+#: Said when the path is the only finding: the drive itself is not the suspect.
+PATH_ONLY = "; do not pull the drive"
+#: Said when the path and the media both fired: a new drive on the same bad cable fails the same way.
+PATH_BEFORE_SWAP = " before the swap, or the new drive goes onto the same bad path"
 
 
 def severity_name(value) -> str | None:
@@ -46,12 +59,17 @@ def severity_name(value) -> str | None:
     return str(value)
 
 
+def tier_index(tier: str | None) -> int:
+    """Position in ``TIERS``; unknown severities just after watch, no flag last."""
+    if tier is None:
+        return len(TIERS) + 1
+    return TIERS.index(tier) if tier in TIERS else len(TIERS)
+
+
 def worst_severity(values) -> str | None:
+    """The most urgent tier among ``values`` (an unknown severity still shows, after watch)."""
     names = {severity_name(v) for v in values} - {None}
-    for name in SEVERITIES:
-        if name in names:
-            return name
-    return next(iter(sorted(names)), None)  # an unknown severity still shows
+    return min(names, key=lambda n: (tier_index(n), n)) if names else None
 
 
 def risk_score(w_severity: float, p_fail: float | None, group_importance: float) -> float:
@@ -61,13 +79,63 @@ def risk_score(w_severity: float, p_fail: float | None, group_importance: float)
     return 1.0 - (1.0 - float(w_severity)) * (1.0 - p) * (1.0 - g)
 
 
-def action_text(severity: str | None, category: str | None, degraded: bool = False,
-                group: str | None = None, lost: int = 0) -> str:
-    """What to do, in our words; a degraded group's caution comes first when it applies."""
-    if category == "check-path":
-        base = _ACTIONS["check-path"]
+def finding_kind(severity: str | None, category: str | None) -> str:
+    """Which action one rule firing asks for: the path, the cooling, or the drive's own severity."""
+    if severity == "check-path" or category == "path":
+        return "check-path"
+    if category == "thermal" and severity not in ("replace-now", "replace-soon"):
+        return "thermal"
+    return severity if severity in ACTIONS else "watch"
+
+
+def drive_actions(findings: Iterable[tuple[str | None, str | None]]) -> list[str]:
+    """Every action the drive's firings ask for, in the order to do them.
+
+    The path comes first when it fired at all (a swap onto a bad cable repeats the fault), then
+    the most urgent swap, then cooling; "keep watching" only when nothing else applies.
+    """
+    kinds = {finding_kind(s, c) for s, c in findings if s is not None or c is not None}
+    swap = next((k for k in ("replace-now", "replace-soon") if k in kinds), None)
+    actions = []
+    if "check-path" in kinds:
+        actions.append(ACTIONS["check-path"] + (PATH_BEFORE_SWAP if swap else PATH_ONLY))
+    if swap:
+        actions.append(ACTIONS[swap])
+    if "thermal" in kinds:
+        actions.append(ACTIONS["thermal"])
+    if not actions and kinds:
+        actions.append(ACTIONS["watch"])
+    return actions
+
+
+def degraded_caution(group: str, lost: pd.DataFrame | None = None, n_lost: int = 0) -> str:
+    """The caution for a degraded group, naming each lost member and when it was last seen."""
+    if lost is not None and len(lost):
+        members = ", ".join(
+            f"lost {row.serial} at {_text(getattr(row, 'host', None))}/{_text(getattr(row, 'slot', None))}, "
+            f"last seen {moment_text(getattr(row, 'last_seen', None))}"
+            for row in lost.itertuples(index=False))
     else:
-        base = _ACTIONS.get(severity, _ACTIONS["watch"])
-    if degraded:
-        return DEGRADED_CAUTION.format(group=group, lost=lost) + "; then: " + base
-    return base
+        members = f"{n_lost} member(s) lost"
+    return DEGRADED_CAUTION.format(group=group, lost=members)
+
+
+def action_text(actions: list[str], caution: str | None = None) -> str:
+    """One line: the caution first when the drive's group is degraded, then the actions in order."""
+    if not actions:
+        return caution or "no action"
+    text = "; then ".join(actions)
+    return f"{caution}; then: {text}" if caution else text
+
+
+def _text(value) -> str:
+    return "?" if value is None or (isinstance(value, float) and pd.isna(value)) else str(value)
+
+
+def moment_text(value) -> str:
+    """A capture time as the reports print it: ``2026-11-28 02:41 UTC``; "never" when missing."""
+    if value is None or pd.isna(value):
+        return "never"
+    stamp = pd.Timestamp(value)
+    stamp = stamp.tz_convert("UTC") if stamp.tzinfo else stamp.tz_localize("UTC")
+    return stamp.strftime("%Y-%m-%d %H:%M UTC")

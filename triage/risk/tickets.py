@@ -3,7 +3,12 @@
 * Key: a short hash of serial + the category of the drive's worst flag, so the same drive for the
   same reason keeps the same key every night (a ticket system can update instead of duplicating).
 * State against the previous export: ``new`` (not open yesterday), ``ongoing`` (open yesterday
-  and still flagged), ``cleared`` (open yesterday, not flagged tonight; reported once, then dropped).
+  and still flagged), ``not-reporting`` (open yesterday and the drive sent nothing since: silence is
+  not evidence, the ticket stays open with the time the drive was last seen), ``cleared`` (open
+  yesterday, and the drive reported tonight without the flag or was removed; reported once, then
+  dropped). A ticket is cleared only by that evidence.
+* ``min_severity`` keeps drives below a tier (e.g. watch-only) out of the queue; a ticket already
+  open stays open while its flag fires, so raising the bar never clears a ticket by itself.
 * File format: RFC 4180 (comma separated, CRLF line ends, fields quoted when they hold a comma,
   quote or line break). Written to a temporary file and renamed, so a reader never sees half.
 * Spreadsheet formula injection: any cell starting with ``= + - @``, TAB or CR gets a leading
@@ -24,11 +29,14 @@ from pathlib import Path
 
 import pandas as pd
 
+from triage.risk.score import tier_index
+
 TICKET_COLUMNS = [
-    "key", "state", "first_flagged", "severity", "category", "host", "slot", "group", "model",
+    "key", "state", "first_flagged", "last_seen", "severity", "category", "host", "slot", "group", "model",
     "serial", "summary", "evidence", "action", "score", "p_fail", "rules",
 ]
-STATES = ("new", "ongoing", "cleared")
+STATES = ("new", "ongoing", "not-reporting", "cleared")
+OPEN_STATES = ("new", "ongoing", "not-reporting")
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 
 
@@ -55,21 +63,35 @@ def restore(cell: str) -> str:
 class TicketCounts:
     new: int
     ongoing: int
+    not_reporting: int
     cleared: int
+
+
+def _day(as_of: datetime | None) -> str:
+    return (as_of or datetime.now()).strftime("%Y-%m-%d")
+
+
+def _stamp(value) -> str:
+    return "" if value is None or pd.isna(value) else pd.Timestamp(value).isoformat()
+
+
+def drive_key(d) -> str:
+    """The ticket key of a ranked drive row: its serial and the category of its most urgent flag."""
+    return ticket_key(d.serial, d.category or d.severity)
 
 
 def current_tickets(drives: pd.DataFrame, as_of: datetime | None = None) -> pd.DataFrame:
     """Tickets for tonight's flagged drives (rows of a ranked frame with at least one rule)."""
     flagged = drives[drives["rules"].map(lambda r: len(r) > 0)]
-    day = (as_of or datetime.now()).strftime("%Y-%m-%d")
+    day = _day(as_of)
     rows = []
     for d in flagged.itertuples(index=False):
-        reason = d.category or d.severity
         where = f"{d.host or '?'}/{d.slot or '?'}"
         rows.append({
-            "key": ticket_key(d.serial, reason),
+            "key": drive_key(d),
             "state": "new",
             "first_flagged": day,
+            "last_seen": _stamp(getattr(d, "taken_at", None)),
             "severity": d.severity or "",
             "category": d.category or "",
             "host": d.host or "", "slot": d.slot or "", "group": d.group or "",
@@ -98,23 +120,70 @@ def read_tickets(path: Path) -> pd.DataFrame:
     return pd.DataFrame(rows, columns=TICKET_COLUMNS).fillna("")
 
 
-def reconcile(tonight: pd.DataFrame, previous: pd.DataFrame) -> pd.DataFrame:
-    """Set each ticket's state against the previous export; add tickets that cleared."""
-    open_before = previous[previous["state"].isin(["new", "ongoing"])].set_index("key")
+def reconcile(tonight: pd.DataFrame, previous: pd.DataFrame, *, reporting: set | frozenset,
+              removed: set | frozenset = frozenset(), last_seen: dict | None = None) -> pd.DataFrame:
+    """Set each ticket's state against the previous export; carry the open tickets not raised tonight.
+
+    ``reporting``: serials that sent a capture tonight (flagged or not); ``removed``: serials in
+    the removal log; ``last_seen``: serial -> newest capture time for drives that went silent.
+    An open ticket not raised tonight is ``cleared`` only when its drive reported or was removed;
+    otherwise it stays open as ``not-reporting``.
+    """
+    last_seen = last_seen or {}
+    open_before = previous[previous["state"].isin(OPEN_STATES)].set_index("key")
     tonight = tonight.copy()
     was_open = tonight["key"].isin(open_before.index)
     tonight["state"] = ["ongoing" if w else "new" for w in was_open]
     if was_open.any():
         # keep the first night it was flagged
         tonight.loc[was_open, "first_flagged"] = tonight.loc[was_open, "key"].map(open_before["first_flagged"])
-    cleared = open_before[~open_before.index.isin(tonight["key"])].reset_index()
-    cleared = cleared.assign(state="cleared")[TICKET_COLUMNS]
-    return pd.concat([tonight, cleared], ignore_index=True)[TICKET_COLUMNS]
+    carried = open_before[~open_before.index.isin(tonight["key"])].reset_index()
+    evidence = carried["serial"].isin(set(reporting) | set(removed))
+    carried["state"] = ["cleared" if e else "not-reporting" for e in evidence]
+    carried["last_seen"] = [
+        row.last_seen if e else (_stamp(last_seen[row.serial]) if row.serial in last_seen else row.last_seen)
+        for e, row in zip(evidence, carried.itertuples(index=False))]
+    return pd.concat([tonight, carried[TICKET_COLUMNS]], ignore_index=True)[TICKET_COLUMNS]
 
 
 def count_states(tickets: pd.DataFrame) -> TicketCounts:
     counts = tickets["state"].value_counts()
     return TicketCounts(*(int(counts.get(s, 0)) for s in STATES))
+
+
+def flag_states(drives: pd.DataFrame, previous: pd.DataFrame, as_of: datetime | None) -> pd.DataFrame:
+    """Each flagged drive's state against a ticket export and the day its flag was first raised.
+
+    ``new`` when the flag was first raised on the day of ``as_of`` (the newest capture), which
+    holds whether ``previous`` is last night's export or tonight's; ``ongoing`` when raised earlier.
+    """
+    raised = previous[previous["state"].isin(OPEN_STATES)].set_index("key")["first_flagged"]
+    day = _day(as_of)
+    drives = drives.copy()
+    states, first = [], []
+    for d in drives.itertuples(index=False):
+        if not d.rules:
+            states.append(None)
+            first.append(None)
+            continue
+        since = raised.get(drive_key(d)) or day
+        states.append("new" if since >= day else "ongoing")
+        first.append(since)
+    drives["state"], drives["first_raised"] = states, first
+    return drives
+
+
+def silent_flags(silent: pd.DataFrame, previous: pd.DataFrame) -> pd.DataFrame:
+    """Drives that stopped reporting, each with the flag it had open in ``previous`` (its most
+    urgent severity and the day first raised; empty for a drive with no open ticket)."""
+    open_before = previous[previous["state"].isin(OPEN_STATES)]
+    open_before = open_before.assign(_tier=open_before["severity"].map(lambda s: tier_index(s or None)))
+    worst = open_before.sort_values(["serial", "_tier"]).drop_duplicates("serial").set_index("serial")
+    silent = silent.copy()
+    silent["severity"] = silent["serial"].map(worst["severity"]) if len(worst) else None
+    silent["first_raised"] = silent["serial"].map(worst["first_flagged"]) if len(worst) else None
+    silent["state"] = "not-reporting"
+    return silent
 
 
 def to_csv_text(tickets: pd.DataFrame) -> str:
@@ -127,22 +196,41 @@ def to_csv_text(tickets: pd.DataFrame) -> str:
     return buffer.getvalue()
 
 
-def write_tickets(tickets: pd.DataFrame, path: Path) -> None:
+def atomic_write_text(path: Path, text: str) -> None:
     """Write atomically: a temporary file in the same folder, flushed, then renamed over ``path``."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     temp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
     with temp.open("w", newline="", encoding="utf-8") as fh:
-        fh.write(to_csv_text(tickets))
+        fh.write(text)
         fh.flush()
         os.fsync(fh.fileno())
     os.replace(temp, path)
 
 
+def write_tickets(tickets: pd.DataFrame, path: Path) -> None:
+    """The RFC 4180 export, written atomically (a reader never sees half a file)."""
+    atomic_write_text(path, to_csv_text(tickets))
+
+
 def export_tickets(drives: pd.DataFrame, out: Path, previous: Path | None = None,
-                   as_of: datetime | None = None) -> tuple[pd.DataFrame, TicketCounts]:
-    """Read the previous export (``previous`` or ``out`` itself), reconcile, write ``out``."""
+                   as_of: datetime | None = None, *, removed: set | frozenset = frozenset(),
+                   silent: pd.DataFrame | None = None,
+                   min_severity: str | None = None) -> tuple[pd.DataFrame, TicketCounts]:
+    """Read the previous export (``previous`` or ``out`` itself), reconcile, write ``out``.
+
+    ``drives``: tonight's ranked frame (every reporting drive, flagged or not); ``removed``: serials
+    in the removal log; ``silent``: rank.silent_drives (serial, last_seen); ``min_severity``: leave
+    drives below this tier out of new tickets.
+    """
     before = read_tickets(previous if previous is not None else out)
-    tickets = reconcile(current_tickets(drives, as_of), before)
+    tonight = current_tickets(drives, as_of)
+    if min_severity is not None:
+        limit = tier_index(min_severity)
+        still_open = set(before.loc[before["state"].isin(OPEN_STATES), "key"])
+        keep = tonight["severity"].map(lambda s: tier_index(s or None) <= limit) | tonight["key"].isin(still_open)
+        tonight = tonight[keep]
+    last_seen = {} if silent is None else dict(zip(silent["serial"], silent["last_seen"]))
+    tickets = reconcile(tonight, before, reporting=set(drives["serial"]), removed=removed, last_seen=last_seen)
     write_tickets(tickets, out)
     return tickets, count_states(tickets)

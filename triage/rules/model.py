@@ -18,7 +18,8 @@ class Severity(str, Enum):
     replace-now > replace-soon > watch > check-path. ``check-path`` comes last because it points
     away from the drive: the fault is in the cable, backplane slot or controller port, and work
     is due there, not on the drive. Only the first two have ``replaces_drive``. (The risk layer
-    orders severities the same way.)
+    orders its action tiers differently: check-path before watch, as work to do tonight;
+    triage/risk/score.py.)
     """
 
     REPLACE_NOW = "replace-now"

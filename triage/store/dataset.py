@@ -34,7 +34,7 @@ import secrets
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import Iterable, Iterator, Mapping
 
@@ -61,6 +61,10 @@ class StoreFormatError(RuntimeError):
     """The store was written by a newer triage, or its format file is unreadable."""
 
 
+class StoreMissing(FileNotFoundError):
+    """The store named does not exist: a typo in --store must not read as an empty, healthy fleet."""
+
+
 @dataclass(frozen=True)
 class SourceRecord:
     """One input file as the manifest remembers it."""
@@ -83,6 +87,21 @@ class Store:
         self.root = Path(root)
         self._holding_lock = False
         self._format_current = False
+
+    @classmethod
+    def existing(cls, root: Path | str) -> "Store":
+        """The store at ``root``, which must already hold a committed batch (its manifest).
+
+        Every command but ``ingest`` opens the store this way: only ``ingest`` creates one, so a
+        mistyped path fails loudly instead of ranking nothing and exiting 0.
+        """
+        store = cls(root)
+        if not store.root.is_dir():
+            raise StoreMissing(f"{store.root}: no such store (check --store; only 'triage ingest' creates one)")
+        if not (store.root / MANIFEST).is_file():
+            raise StoreMissing(f"{store.root}: not a triage store (no {MANIFEST}; "
+                               "check --store, or run 'triage ingest' into it first)")
+        return store
 
     # -- places ---------------------------------------------------------------------------
     @property
@@ -326,6 +345,38 @@ class Store:
             upper = (day <= until.strftime("%Y-%m-%d")) & (stamp < pa.scalar(until, schema.field(time_column).type))
             condition = upper if condition is None else condition & upper
         return dataset.to_table(columns=wanted, filter=condition).to_pandas()
+
+    def last_times(self, table: str, key: str) -> pd.DataFrame:
+        """The newest time of every ``key`` value over the table's whole history (two columns read)."""
+        schema, time_column, _ = TABLES[table]
+        root = self.table_dir(table)
+        if not root.is_dir():
+            return schema.empty_table().select([key, time_column]).to_pandas()
+        full = schema.append(pa.field(PARTITION_COLUMN, pa.string()))
+        rows = ds.dataset(root, schema=full, format="parquet", partitioning=PARTITIONING).to_table(
+            columns=[key, time_column])
+        newest = rows.group_by(key).aggregate([(time_column, "max")])
+        return newest.rename_columns([key, time_column]).to_pandas()
+
+    def last_rows(self, table: str, key: str, columns: list[str], last: pd.DataFrame | None = None) -> pd.DataFrame:
+        """The newest row of each ``key`` value, ``columns`` only.
+
+        ``last``: the rows of ``last_times`` wanted (default: every key). Only the days on which
+        those keys were last seen are opened.
+        """
+        _, time_column, _ = TABLES[table]
+        wanted = list(dict.fromkeys([key, time_column, *columns]))
+        if last is None:
+            last = self.last_times(table, key)
+        parts = []
+        for day, part in last.groupby(last[time_column].dt.strftime("%Y-%m-%d")):
+            start = datetime.strptime(day, "%Y-%m-%d").replace(tzinfo=timezone.utc)
+            rows = self.read(table, columns=wanted, since=start, until=start + timedelta(days=1))
+            parts.append(rows.merge(part, on=[key, time_column]))
+        if not parts:
+            return self.read(table, columns=wanted).iloc[0:0]
+        rows = pd.concat(parts, ignore_index=True)
+        return rows.drop_duplicates(subset=[key], keep="last")[wanted].reset_index(drop=True)
 
     def days(self, table: str) -> list[str]:
         """The day partitions present, oldest first."""

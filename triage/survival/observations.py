@@ -429,6 +429,14 @@ class Observations:
     def cohort(self, label: str) -> pd.DataFrame:
         return self.drives[self.drives["cohort"] == label]
 
+    @property
+    def as_of(self) -> pd.Timestamp | None:
+        """The newest capture behind these observations (every report states it)."""
+        if "last_taken_at" not in self.drives or self.drives.empty:
+            return None
+        newest = self.drives["last_taken_at"].max()
+        return None if pd.isna(newest) else newest
+
 
 def event_definition(count_proactive: bool) -> str:
     return "replacements" if count_proactive else "failures"
