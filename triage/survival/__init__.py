@@ -9,7 +9,7 @@ from triage.survival.model import FleetRiskModel, ModelFormatError, latest_model
 __all__ = ["FleetRiskModel", "ModelFormatError", "latest_model", "readable_latest_model"]
 
 
-def fit_and_save(store, horizon_days: float = 30, by=("model",), count_proactive: bool = True, say=None):
+def fit_and_save(store, horizon_days: float = 30, by=("model",), count_proactive: bool = False, say=None):
     """Fit the fleet risk model on ``store`` and save it under ``<store>/models``; returns the path.
 
     Raises ``triage.survival.run.EmptyStore`` when nothing is stored and

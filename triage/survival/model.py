@@ -181,7 +181,7 @@ class FleetRiskModel:
             "first_taken_at": _iso(first),
             "last_taken_at": _iso(last),
             "snapshots": int(scan.rows_read),
-            "drives": int(len(obs.drives)),
+            "drives": int(obs.drives["serial"].nunique()),  # a drive may have several periods
             "failures": int(obs.drives["event"].sum()),
             "landmarks": len(marks),
             "landmark_rows": int(self.landmark_.n_rows_),
