@@ -32,6 +32,8 @@ def ingest(
         fail(str(exc), Exit.USAGE)
     except StoreLocked as exc:
         fail(str(exc), Exit.LOCKED)
+    for note in report.empty_folders:
+        typer.echo(f"ingest: {note}", err=True)
     for rejected in report.rejected[:20]:
         typer.echo(f"quarantined: {rejected}", err=True)
     if len(report.rejected) > 20:
@@ -42,6 +44,11 @@ def ingest(
         f"stored {stored}; {len(report.rejected)} line(s) quarantined",
         err=True,
     )
+    if report.clamped:
+        typer.echo(f"ingest: {report.clamped} capture(s) hold a counter beyond 2^63-1, stored as "
+                   "2^63-1 with counters_clamped set", err=True)
+    if report.empty_folders:
+        raise typer.Exit(int(Exit.USAGE))
     if report.rejected:
         raise typer.Exit(int(Exit.INPUT_REJECTED))
 

@@ -112,6 +112,7 @@ def _snapshot_columns(fleet: Fleet, state: NightState) -> dict[str, tuple[np.nda
             values[rows], missing[rows] = fields[source], False
         values, missing = column("data_written_bytes")
         values[rows], missing[rows] = fields["data_units_written"] * NVME_DATA_UNIT_BYTES, False
+    cols["counters_clamped"] = (np.zeros(n, dtype=bool), none)  # every demo counter fits int64
     for name in SNAPSHOT_COLUMNS:
         column(name, bool if pa.types.is_boolean(SNAPSHOTS.field(name).type) else np.int64)
     return cols

@@ -8,13 +8,16 @@ ingest close to the cost of decoding the JSON alone (benchmarks/ingest.py).
 
 from __future__ import annotations
 
+import json
 import multiprocessing
 import os
 import re
-import zlib
+from collections import deque
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
+from datetime import datetime, timedelta, timezone
 from pathlib import Path
+from typing import Iterator
 
 import numpy as np
 import orjson
@@ -27,10 +30,22 @@ from triage.formats.ata_smart import decode_smart_batch
 from triage.formats.ata_thresholds import decode_thresholds_batch
 from triage.formats.nvme_health import decode_nvme_health_batch
 from triage.formats.nvme_identify import decode_nvme_identify_batch
+from triage.ingest.reading import (
+    MAX_BLANK_LINES,
+    MAX_LINE_BYTES,
+    CaptureLines,
+    FileStopped,
+    OversizeLine,
+    display_name,
+    excerpt,
+    is_utf8_text,
+)
 from triage.store.schema import (
     ATA_COUNTER_ATTRIBUTES,
     ATA_POWER_ON_HOURS_ID,
     ATA_TEMPERATURE_ID,
+    ATTRIBUTES,
+    SNAPSHOTS,
 )
 
 CAPTURE_VERSION = 1
@@ -40,10 +55,25 @@ PAYLOADS = {
     "nvme": {"identify": 4096, "health": 512},
 }
 OPTIONAL_PAYLOADS = {"thresholds"}
-# RFC 3339 section 5.6 date-time: full-date "T" full-time, with a mandatory offset.
-RFC3339 = re.compile(r"\d{4}-\d{2}-\d{2}[Tt ]\d{2}:\d{2}:\d{2}(\.\d+)?([Zz]|[+-]\d{2}:\d{2})\Z")
+# RFC 3339 section 5.6 date-time: full-date "T" full-time with a mandatory offset ("T" and "Z"
+# may be lower case; the section's note allows a space for "T"). Ranges of the offset per the
+# section's grammar (time-hour 00-23, time-minute 00-59); impossible dates are caught when parsed.
+RFC3339 = re.compile(
+    r"(\d{4}-\d{2}-\d{2})[Tt ](\d{2}:\d{2}:\d{2})(\.\d+)?([Zz]|[+-](?:[01]\d|2[0-3]):[0-5]\d)\Z")
 INT64_MAX = 2**63 - 1
 NVME_DATA_UNIT_BYTES = 512_000  # NVMe Base Spec 2.0, log 02h: a data unit is 1000 x 512 bytes
+#: Captures dated before this are quarantined: no drive in a fleet today was read before it, and
+#: a year-0000 clock must not become a partition (our choice, no source).
+DATE_FLOOR = datetime(2000, 1, 1, tzinfo=timezone.utc)
+#: Captures dated further than this past the ingesting machine's clock are quarantined: a host
+#: whose clock runs ahead must not make every later report treat its capture as "now" (our
+#: choice: more than any NTP-kept clock drifts, less than one nightly interval).
+FUTURE_TOLERANCE = timedelta(hours=1)
+#: Lines parsed and decoded together, at most (memory is bounded by a batch, not by a file)...
+BATCH_LINES = 25_000
+#: ... and bytes of quarantine excerpts held together, at most.
+BATCH_EXCERPT_BYTES = 32 * 2**20
+_STRING_FIELDS = ("host", "device", "slot", "group")
 
 
 class LineError(ValueError):
@@ -74,69 +104,88 @@ class Rejected:
 class _Pending:
     """Lines that passed the per-line checks, by bus, waiting for the batch decode."""
 
-    meta: list[tuple] = field(default_factory=list)  # (source, line, host, device, slot, group, taken_at)
+    meta: list[tuple] = field(default_factory=list)  # (capture id, line, host, device, slot, group, taken_at)
     payloads: dict[str, list[bytes | None]] = field(default_factory=dict)
 
 
 @dataclass
 class CaptureBatch:
-    snapshots: pd.DataFrame
-    attributes: pa.Table | pd.DataFrame  # a pa.Table of the store's ATTRIBUTES columns when any
+    """Decoded captures of some lines. ``snapshots`` and ``attributes`` are Arrow tables of the
+    store's SNAPSHOTS / ATTRIBUTES columns plus ``_capture`` (file sequence << 32 | line), which
+    says which capture an attribute row belongs to; integers never pass through floating point."""
+
+    snapshots: pa.Table
+    attributes: pa.Table
     rejected: list[Rejected]
     lines: int
+    clamped: int = 0  # captures with a counter beyond the int64 column, stored at 2**63-1
+
+    @classmethod
+    def empty(cls) -> "CaptureBatch":
+        return cls(_with_capture(SNAPSHOTS).empty_table(), _with_capture(ATTRIBUTES).empty_table(), [], 0)
+
+    @classmethod
+    def join(cls, parts: list["CaptureBatch"]) -> "CaptureBatch":
+        if not parts:
+            return cls.empty()
+        return cls(
+            snapshots=pa.concat_tables([p.snapshots for p in parts]),
+            attributes=pa.concat_tables([p.attributes for p in parts]),
+            rejected=[r for p in parts for r in p.rejected],
+            lines=sum(p.lines for p in parts),
+            clamped=sum(p.clamped for p in parts),
+        )
 
 
-def read_file(path: Path) -> tuple[list[bytes], LineError | None]:
-    """The complete lines of a capture file, and the error that cut it short (None if none).
-
-    The file is decompressed whole (a gzip file may hold several members, as ``cat a.gz b.gz``
-    makes) and split at newlines: much faster than a line-by-line text reader. A damaged or
-    truncated gzip stream keeps the lines before the damage; the incomplete last line is dropped
-    and reported.
-    """
-    raw = path.read_bytes()
-    error = None
-    if path.name.endswith(".gz"):
-        parts = []
-        while raw:
-            inflater = zlib.decompressobj(16 + zlib.MAX_WBITS)
-            try:
-                parts.append(inflater.decompress(raw))
-                parts.append(inflater.flush())
-            except zlib.error as exc:
-                error = f"damaged gzip data: {exc}"
-                break
-            if not inflater.eof:
-                error = "gzip data ends early (truncated file)"
-                break
-            raw = inflater.unused_data.lstrip(b"\0")  # members may be padded with NULs
-        data = b"".join(parts)
-    else:
-        data = raw
-    lines = data.split(b"\n")
-    last = lines.pop()  # after the final newline: empty, or a line without its newline
-    if last.strip() and error is None:
-        lines.append(last)  # a last line without a newline is still a line (unless cut off)
-    if error is not None:
-        return lines, LineError(None, f"file unreadable after line {len(lines)}: {error}")
-    return lines, None
+def _with_capture(schema: pa.Schema) -> pa.Schema:
+    return schema.append(pa.field("_capture", pa.int64()))
 
 
-def line_text(line: bytes) -> str:
-    """A raw line as quarantine text (undecodable bytes replaced, never dropped silently)."""
-    return line.rstrip(b"\r").decode("utf-8", errors="replace")
+def normalise_timestamp(text: str) -> str | None:
+    """An RFC 3339 date-time as the text Arrow parses (upper-case "T"/"Z", at most 6 fractional
+    digits: the store keeps microseconds, finer digits are cut), or None if it is not one."""
+    match = RFC3339.match(text)
+    if match is None:
+        return None
+    date, time, fraction, offset = match.groups()
+    if len(text) == 20 and text[10] == "T" and text[19] == "Z":
+        return text  # the common shape, as written by `triage capture`
+    return f"{date}T{time}{(fraction or '')[:7]}{offset.upper()}"
 
 
-def check_line(text: str | bytes) -> tuple[dict, str]:
-    """The per-line checks of the contract; returns the object and its bus."""
+def _no_constants(name: str):
+    raise ValueError(f"{name} is not JSON")
+
+
+def load_json(line: bytes) -> object:
+    """One JSON text (RFC 8259) -> object. orjson first (strict, ~3x the stdlib's speed); a text
+    it refuses only for an integer beyond 64 bits is read again by the stdlib, so a huge number in
+    an unknown key does not cost the line."""
     try:
-        obj = orjson.loads(text)  # strict RFC 8259 (no NaN), UTF-8 checked, ~3x the stdlib's speed
+        return orjson.loads(line)
     except orjson.JSONDecodeError as exc:
-        raise LineError(None, f"bad JSON: {exc.msg} at column {exc.colno}") from None
+        first = exc
+    try:
+        obj = json.loads(line.decode("utf-8"), parse_constant=_no_constants)
+    except (ValueError, RecursionError):  # UnicodeDecodeError is a ValueError
+        raise LineError(None, f"bad JSON: {first.msg} at column {first.colno}") from None
+    if isinstance(obj, dict):
+        for name in _STRING_FIELDS + ("taken_at",):
+            value = obj.get(name)
+            if isinstance(value, str) and not is_utf8_text(value):
+                raise LineError(name, "not valid Unicode (a lone surrogate escape)")
+    return obj
+
+
+def check_line(text: bytes) -> tuple[dict, str, str]:
+    """The per-line checks of the contract; returns the object, its bus and its timestamp as
+    :func:`normalise_timestamp` gives it."""
+    obj = load_json(text)
     if not isinstance(obj, dict):
         raise LineError(None, "line is not a JSON object")
-    if obj.get("capture") != CAPTURE_VERSION:
-        raise LineError("capture", f"unsupported capture version {obj.get('capture')!r} (expected 1)")
+    version = obj.get("capture")
+    if type(version) is not int or version != CAPTURE_VERSION:  # not true, not 1.0
+        raise LineError("capture", f"unsupported capture version {_short(version)} (expected the integer 1)")
     for name in ("host", "device"):
         value = obj.get(name)
         if not isinstance(value, str) or not value:
@@ -146,12 +195,19 @@ def check_line(text: str | bytes) -> tuple[dict, str]:
         if value is not None and not isinstance(value, str):
             raise LineError(name, "must be a string or null")
     taken_at = obj.get("taken_at")
-    if not isinstance(taken_at, str) or not RFC3339.match(taken_at):
-        raise LineError("taken_at", f"not an RFC 3339 timestamp with offset: {taken_at!r}")
+    stamp = normalise_timestamp(taken_at) if isinstance(taken_at, str) else None
+    if stamp is None:
+        raise LineError("taken_at", f"not an RFC 3339 timestamp with offset: {_short(taken_at)}")
     bus = obj.get("bus")
-    if bus not in PAYLOADS:
-        raise LineError("bus", f"must be 'ata' or 'nvme', got {bus!r}")
-    return obj, bus
+    if not isinstance(bus, str) or bus not in PAYLOADS:
+        raise LineError("bus", f"must be 'ata' or 'nvme', got {_short(bus)}")
+    return obj, bus, stamp
+
+
+def _short(value: object, limit: int = 80) -> str:
+    """A value for a reason line: its repr, cut to ``limit`` characters."""
+    text = repr(value)
+    return text if len(text) <= limit else text[:limit] + "..."
 
 
 def decode_payload(obj: dict, name: str, length: int) -> bytes | None:
@@ -165,101 +221,218 @@ def decode_payload(obj: dict, name: str, length: int) -> bytes | None:
     if len(value) != 2 * length:
         raise LineError(name, f"wrong length: {len(value)} hex digits, expected {2 * length}")
     try:
-        return bytes.fromhex(value)
+        data = bytes.fromhex(value)
     except ValueError:
         raise LineError(name, "bad hex") from None
+    if len(data) != length:  # bytes.fromhex skips whitespace: the payload is short
+        raise LineError(name, "bad hex: holds whitespace")
+    return data
 
 
-def parse_capture_files(paths: list[Path], workers: int | None = None) -> CaptureBatch:
-    """Read capture files; good lines become store rows, bad ones ``Rejected`` entries.
+def parse_capture_files(paths: list[Path], workers: int | None = None, now: datetime | None = None) -> CaptureBatch:
+    """Read capture files whole; good lines become store rows, bad ones ``Rejected`` entries
+    (a convenience over :func:`capture_parts`, whose batches bound the memory)."""
+    return CaptureBatch.join([batch for batch, _ in capture_parts(list(paths), workers=workers, now=now)])
 
-    With ``workers`` > 1 (default: one per CPU) the files are split into that many groups,
-    read and decoded in parallel processes, and the results joined in the order of ``paths``.
+
+def capture_parts(
+    paths: list[Path],
+    *,
+    workers: int | None = None,
+    now: datetime | None = None,
+    max_lines: int | None = None,
+) -> Iterator[tuple[CaptureBatch, list[Path]]]:
+    """The captures of ``paths`` in batches of at most ``max_lines`` lines, in file order.
+
+    Yields ``(batch, finished)``: ``finished`` lists the files whose last line is in the batch.
+    Consecutive small files are read as one group and decoded together (one decode per batch,
+    not per file). With ``workers`` > 1 (default: one per CPU) groups are read in parallel
+    processes, at most ``workers + 1`` batches ahead; a group longer than a batch is continued in
+    this process from where the worker stopped.
     """
-    paths = list(paths)
-    workers = min(workers or os.cpu_count() or 1, len(paths))
+    now = now or datetime.now(timezone.utc)
+    max_lines = max_lines or BATCH_LINES
+    workers = max(1, min(workers or os.cpu_count() or 1, len(paths)))
+    groups = _groups(list(enumerate(paths)), workers)
     if workers <= 1:
-        return _parse_group(paths)
-    groups = [list(g) for g in np.array_split(np.array(paths, dtype=object), workers) if len(g)]
+        for group in groups:
+            yield from _GroupReader(group, now).parts(max_lines)
+        return
     context = multiprocessing.get_context("fork") if "fork" in multiprocessing.get_all_start_methods() else None
-    with ProcessPoolExecutor(max_workers=len(groups), mp_context=context) as pool:
-        parts = list(pool.map(_parse_group, groups))
-    return CaptureBatch(
-        snapshots=_concat_frames([p.snapshots for p in parts]),
-        attributes=_concat_tables([p.attributes for p in parts]),
-        rejected=[r for p in parts for r in p.rejected],
-        lines=sum(p.lines for p in parts),
-    )
+    with ProcessPoolExecutor(max_workers=workers, mp_context=context) as pool:
+        todo = iter(groups)
+        window: deque = deque()
+
+        def top_up() -> None:
+            while len(window) < workers + 1 and (group := next(todo, None)) is not None:
+                window.append((group, pool.submit(_first_part, group, now, max_lines)))
+
+        top_up()
+        while window:
+            group, future = window.popleft()
+            batch, finished, resume = future.result()
+            top_up()
+            yield batch, finished
+            if resume is not None:
+                yield from _GroupReader(group, now, resume).parts(max_lines)
 
 
-def _parse_group(paths: list[Path]) -> CaptureBatch:
-    pending = {bus: _Pending(payloads={n: [] for n in names}) for bus, names in PAYLOADS.items()}
-    rejected: list[Rejected] = []
-    lines = 0
-    for path in paths:
-        source = str(path)
-        try:
-            file_lines, error = read_file(path)
-        except OSError as exc:
-            rejected.append(Rejected(source, 1, None, f"file unreadable: {exc}", ""))
-            continue
-        lines += len(file_lines)
-        for number, line in enumerate(file_lines, start=1):
-            if not line.strip():
-                continue
+#: Compressed bytes of consecutive files read as one group, at most (fewer when that would leave
+#: a worker idle): one file per host per night is typical, most far smaller than this.
+GROUP_BYTES = 4 * 2**20
+
+
+def _groups(files: list[tuple[int, Path]], workers: int) -> list[list[tuple[int, Path]]]:
+    sizes = [_size(p) for _, p in files]
+    target = max(1, min(GROUP_BYTES, sum(sizes) // workers))
+    groups, group, held = [], [], 0
+    for item, size in zip(files, sizes):
+        group.append(item)
+        held += size
+        if held >= target:
+            groups.append(group)
+            group, held = [], 0
+    if group:
+        groups.append(group)
+    return groups
+
+
+def _size(path: Path) -> int:
+    try:
+        return path.stat().st_size
+    except OSError:
+        return 0  # reported when it is read
+
+
+def _first_part(group: list[tuple[int, Path]], now: datetime, max_lines: int):
+    """In a worker: the first batch of a group, the files it finished, and where to resume
+    (None when the group is done)."""
+    reader = _GroupReader(group, now)
+    batch, finished = reader.fill(max_lines)
+    return batch, finished, reader.resume_point()
+
+
+class _GroupReader:
+    """Lines of consecutive files, checked per line and decoded per batch; keeps its place in the
+    current file between batches (a gzip stream is never inflated twice in one process)."""
+
+    def __init__(self, group: list[tuple[int, Path]], now: datetime, resume: tuple[int, int, int] | None = None):
+        self.group = group
+        self.now = now
+        self.index, start, first_line = resume or (0, 0, 1)
+        self.reader: CaptureLines | None = None
+        self.lines: Iterator | None = None
+        if self.index < len(group):
+            self._open(start, first_line)
+
+    def _open(self, start: int = 0, first_line: int = 1) -> None:
+        self.reader = CaptureLines(self.group[self.index][1], start, first_line)
+        self.lines = iter(self.reader)
+
+    def done(self) -> bool:
+        return self.index >= len(self.group)
+
+    def resume_point(self) -> tuple[int, int, int] | None:
+        return None if self.done() else (self.index, self.reader.position, self.reader.next_line)
+
+    def parts(self, max_lines: int) -> Iterator[tuple[CaptureBatch, list[Path]]]:
+        while not self.done():
+            yield self.fill(max_lines)
+
+    def fill(self, max_lines: int) -> tuple[CaptureBatch, list[Path]]:
+        """Up to ``max_lines`` lines (and ``BATCH_EXCERPT_BYTES`` of excerpts), decoded."""
+        pending = {bus: _Pending(payloads={n: [] for n in names}) for bus, names in PAYLOADS.items()}
+        rejected: list[Rejected] = []
+        finished: list[Path] = []
+        count = excerpt_bytes = 0
+        starts: dict[int, tuple[int, int]] = {}  # seq -> where this batch began in that file
+        while not self.done() and count < max_lines and excerpt_bytes < BATCH_EXCERPT_BYTES:
+            seq, path = self.group[self.index]
+            starts.setdefault(seq, (self.reader.position, self.reader.next_line))
+            n, size, file_done = _read_lines(self.reader, self.lines, path, seq, pending, rejected,
+                                             max_lines - count)
+            count += n
+            excerpt_bytes += size
+            if file_done:
+                finished.append(path)
+                self.index += 1
+                if not self.done():
+                    self._open()
+        parts, late = [], []
+        sources = {seq: (path, display_name(path)) for seq, path in self.group}
+        for bus, batch in pending.items():
+            if batch.meta:
+                decode = _decode_ata if bus == "ata" else _decode_nvme
+                part, bad = decode(batch, sources, self.now)
+                parts.append(part)
+                late += bad
+        batch = CaptureBatch.join(parts)
+        batch.rejected = rejected + _with_line_texts(late, sources, starts)
+        batch.lines = count
+        return batch, finished
+
+
+def _read_lines(reader: CaptureLines, lines: Iterator, path: Path, seq: int, pending: dict,
+                rejected: list[Rejected], max_lines: int) -> tuple[int, int, bool]:
+    """Check up to ``max_lines`` lines of one file into ``pending``; returns the lines read, the
+    excerpt bytes kept, and whether the file is done."""
+    source = display_name(path)
+    count = excerpt_bytes = 0
+    done = stopped = False
+    try:
+        while count < max_lines and excerpt_bytes < BATCH_EXCERPT_BYTES:
+            item = next(lines, None)
+            if item is None:
+                done = True
+                break
+            number, line = item
+            count += 1
             try:
-                obj, bus = check_line(line)
+                if isinstance(line, OversizeLine):
+                    raise LineError(None, f"line of {line.length} bytes is over the limit of {MAX_LINE_BYTES}")
+                obj, bus, stamp = check_line(line)
                 decoded = [(n, decode_payload(obj, n, size)) for n, size in PAYLOADS[bus].items()]
             except LineError as exc:
-                rejected.append(Rejected(source, number, exc.field, exc.reason, line_text(line)))
+                text = excerpt(line)
+                excerpt_bytes += len(text)
+                rejected.append(Rejected(source, number, exc.field, exc.reason, text))
                 continue
             target = pending[bus]
-            target.meta.append((source, number, obj["host"], obj["device"], obj.get("slot"),
-                                obj.get("group"), obj["taken_at"]))
+            target.meta.append(((seq << 32) | number, number, obj["host"], obj["device"],
+                                obj.get("slot"), obj.get("group"), stamp))
             for name, data in decoded:
                 target.payloads[name].append(data)
-        if error is not None:
-            rejected.append(Rejected(source, len(file_lines) + 1, error.field, error.reason, ""))
-    snapshots, attributes, late = [], [], []
-    for bus, batch in pending.items():
-        if not batch.meta:
-            continue
-        decode = _decode_ata if bus == "ata" else _decode_nvme
-        snap, attrs, bad = decode(batch)
-        late.extend(bad)
-        snapshots.append(snap)
-        if attrs is not None:
-            attributes.append(attrs)
-    return CaptureBatch(
-        snapshots=_concat_frames(snapshots),
-        attributes=_concat_tables(attributes),
-        rejected=rejected + _with_line_texts(late),
-        lines=lines,
-    )
+    except FileStopped as exc:
+        rejected.append(Rejected(source, reader.next_line, None, f"file unreadable after line {reader.next_line - 1}: {exc}", ""))
+        done = stopped = True
+    except OSError as exc:
+        rejected.append(Rejected(source, reader.next_line, None, f"file unreadable: {exc.strerror or exc}", ""))
+        done = stopped = True
+    if done and not stopped and reader.blank_lines > MAX_BLANK_LINES:
+        rejected.append(Rejected(source, reader.next_line, None,
+                                 f"{reader.blank_lines} blank lines (a capture program writes none); "
+                                 "the other lines were read", ""))
+    return count, excerpt_bytes, done
 
 
-def _concat_frames(frames: list[pd.DataFrame]) -> pd.DataFrame:
-    frames = [f for f in frames if len(f)]
-    return pd.concat(frames, ignore_index=True) if frames else pd.DataFrame()
-
-
-def _concat_tables(tables: list) -> pa.Table | pd.DataFrame:
-    tables = [t for t in tables if isinstance(t, pa.Table) and t.num_rows]
-    return pa.concat_tables(tables) if tables else pd.DataFrame()
-
-
-def _with_line_texts(rejected: list[Rejected]) -> list[Rejected]:
-    """Fill in the text of lines rejected after the per-line stage (read again: they are rare,
+def _with_line_texts(rejected: list[tuple[int, Rejected]], sources: dict, starts: dict) -> list[Rejected]:
+    """Fill in the excerpts of lines rejected after the per-line stage (read again: they are rare,
     and keeping every line's text until the batch decode would double ingest's memory)."""
-    wanted: dict[str, set[int]] = {}
-    for r in rejected:
-        wanted.setdefault(r.source, set()).add(r.line)
-    texts: dict[tuple[str, int], str] = {}
-    for source, numbers in wanted.items():
-        file_lines, _ = read_file(Path(source))
-        for number in numbers:
-            texts[source, number] = line_text(file_lines[number - 1]) if number <= len(file_lines) else ""
-    return [Rejected(r.source, r.line, r.field, r.reason, texts.get((r.source, r.line), r.text)) for r in rejected]
+    wanted: dict[int, set[int]] = {}
+    for seq, r in rejected:
+        wanted.setdefault(seq, set()).add(r.line)
+    texts: dict[tuple[int, int], str] = {}
+    for seq, numbers in wanted.items():
+        last = max(numbers)
+        try:
+            for number, line in CaptureLines(sources[seq][0], *starts[seq]):
+                if number in numbers:
+                    texts[seq, number] = excerpt(line)
+                if number >= last:
+                    break
+        except (FileStopped, OSError):
+            pass  # the lines before the damage were found; the damage itself is reported already
+    return [Rejected(r.source, r.line, r.field, r.reason, texts.get((seq, r.line), r.text)) for seq, r in rejected]
 
 
 def _stack(chunks: list[bytes | None], length: int) -> np.ndarray:
@@ -267,52 +440,91 @@ def _stack(chunks: list[bytes | None], length: int) -> np.ndarray:
     return np.frombuffer(b"".join(filled), dtype=np.uint8).reshape(len(filled), length)
 
 
-def _meta_frame(batch: _Pending, bus: str) -> pd.DataFrame:
-    meta = pd.DataFrame(batch.meta, columns=["source_file", "line", "host", "device",
+def _meta_frame(batch: _Pending, bus: str, sources: dict) -> pd.DataFrame:
+    meta = pd.DataFrame(batch.meta, columns=["_capture", "line", "host", "device",
                                              "slot", "group", "taken_at"])
+    meta["seq"] = meta["_capture"].to_numpy(np.int64) >> 32
+    meta["source_file"] = meta["seq"].map({seq: name for seq, (_, name) in sources.items()})
     meta["bus"] = bus
     meta["taken_at"] = _parse_times(meta["taken_at"])
     return meta
 
 
 def _parse_times(stamps: pd.Series) -> pd.Series:
-    """RFC 3339 strings (shape already checked) -> UTC; an impossible date becomes NaT."""
+    """Normalised RFC 3339 strings -> UTC microseconds; an impossible date becomes NaT."""
+    values = pa.array(stamps.to_numpy(dtype=object), pa.string())
     try:  # Arrow's ISO 8601 cast (with offsets) is several times faster than pandas' parser
-        parsed = pc.cast(pa.array(stamps.to_numpy(dtype=object), pa.string()), pa.timestamp("us", tz="UTC"))
-        return pd.Series(parsed.to_pandas(), index=stamps.index)
+        parsed = pc.cast(values, pa.timestamp("us", tz="UTC"))
     except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-        pass  # lower-case 't'/'z', nanoseconds, an impossible date: let pandas sort them out
+        parsed = pa.array([_parse_one(s) for s in values.to_pylist()], pa.timestamp("us", tz="UTC"))
+    return pd.Series(parsed.to_pandas(), index=stamps.index)
+
+
+def _parse_one(stamp: str):
     try:
-        return pd.to_datetime(stamps, utc=True, format="ISO8601")
-    except (ValueError, OverflowError):
-        return stamps.map(lambda s: pd.to_datetime(s, utc=True, format="ISO8601", errors="coerce"))
+        return pc.cast(pa.array([stamp], pa.string()), pa.timestamp("us", tz="UTC"))[0].as_py()
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError, ValueError, OverflowError):
+        return None
 
 
-def _reject_rows(meta: pd.DataFrame, mask: np.ndarray, field: str, reason) -> list[Rejected]:
+def _reject_rows(meta: pd.DataFrame, mask: np.ndarray, field: str, reason) -> list[tuple[int, Rejected]]:
+    """(file sequence, Rejected) for the rows in ``mask``; the excerpt is filled in later."""
     out = []
     for i in np.flatnonzero(mask):
         why = reason(i) if callable(reason) else reason
-        out.append(Rejected(meta.at[i, "source_file"], int(meta.at[i, "line"]), field, why, ""))
+        out.append((int(meta.at[i, "seq"]), Rejected(meta.at[i, "source_file"], int(meta.at[i, "line"]), field, why, "")))
     return out
 
 
-def _common_checks(meta: pd.DataFrame, serial: pd.Series) -> tuple[np.ndarray, list[Rejected]]:
-    bad_time = meta["taken_at"].isna().to_numpy()
+def _common_checks(meta: pd.DataFrame, serial: pd.Series, now: datetime) -> tuple[np.ndarray, list]:
+    taken = meta["taken_at"]
+    bad_time = taken.isna().to_numpy()
+    latest = pd.Timestamp(now) + FUTURE_TOLERANCE
+    too_early = (taken < pd.Timestamp(DATE_FLOOR)).fillna(False).to_numpy(bool)
+    too_late = (taken > latest).fillna(False).to_numpy(bool)
     bad_serial = (serial.fillna("").str.len() == 0).to_numpy() & ~bad_time
     rejected = _reject_rows(meta, bad_time, "taken_at", "not a valid date and time")
-    rejected += _reject_rows(meta, bad_serial, "identify", "serial number is empty")
+    rejected += _reject_rows(meta, too_early, "taken_at",
+                             f"dated before {DATE_FLOOR:%Y-%m-%d} (a host clock that was never set?)")
+    rejected += _reject_rows(meta, too_late & ~too_early, "taken_at",
+                             lambda i: f"dated {_iso(taken.iat[i])}, more than "
+                                       f"{FUTURE_TOLERANCE} after this machine's clock "
+                                       f"({now:%Y-%m-%dT%H:%M:%SZ}): a host clock running ahead?")
+    bad_time |= too_early | too_late
+    rejected += _reject_rows(meta, bad_serial & ~bad_time, "identify", "serial number is empty")
     return bad_time | bad_serial, rejected
 
 
-def _decode_ata(batch: _Pending):
-    meta = _meta_frame(batch, "ata")
+def _iso(moment: pd.Timestamp) -> str:
+    """A UTC moment as RFC 3339 text, also past year 9999 (where strftime gives up)."""
+    return (f"{moment.year:04d}-{moment.month:02d}-{moment.day:02d}T"
+            f"{moment.hour:02d}:{moment.minute:02d}:{moment.second:02d}Z")
+
+
+def _table(schema: pa.Schema, columns: dict, n: int) -> pa.Table:
+    """Columns (numpy, pandas or Arrow) -> a table of ``schema`` plus ``_capture``; integer
+    columns go straight from int64 to Arrow (never through float), absent ones are null."""
+    arrays = []
+    for fld in _with_capture(schema):
+        value = columns.get(fld.name)
+        if value is None:
+            arrays.append(pa.nulls(n, fld.type))
+        elif isinstance(value, (pa.Array, pa.ChunkedArray)):
+            arrays.append(value.cast(fld.type))
+        else:
+            arrays.append(pa.array(value, fld.type, from_pandas=True))
+    return pa.Table.from_arrays(arrays, schema=_with_capture(schema))
+
+
+def _decode_ata(batch: _Pending, sources: dict, now: datetime) -> tuple[CaptureBatch, list]:
+    meta = _meta_frame(batch, "ata", sources)
     n = len(meta)
     identity = decode_identify_batch(_stack(batch.payloads["identify"], 512))
     smart_rows, attrs = decode_smart_batch(_stack(batch.payloads["smart"], 512))
     has_thresholds = np.array([p is not None for p in batch.payloads["thresholds"]])
     thr_rows, thresholds = decode_thresholds_batch(_stack(batch.payloads["thresholds"], 512))
 
-    bad, rejected = _common_checks(meta, identity["serial"])
+    bad, rejected = _common_checks(meta, identity["serial"], now)
     checks = [
         (~identity["integrity_ok"].to_numpy(bool), "identify", "integrity word checksum mismatch (word 255)"),
         (identity["problem"].eq("identify.logical_sector_size").to_numpy(bool), "identify",
@@ -332,42 +544,51 @@ def _decode_ata(batch: _Pending):
     ids = attrs["attribute_id"].to_numpy()
     attrs = attrs.assign(threshold=_thresholds_of(n, thresholds, has_thresholds, row, ids))
 
-    snap = pd.DataFrame({
-        "serial": identity["serial"], "model": identity["model"], "firmware": identity["firmware"],
-        "bus": "ata", "user_capacity_bytes": identity["user_capacity_bytes"],
-        "rotation_rpm": identity["rotation_rpm"], "wwn": identity["wwn"],
-    })
-    for name in ("host", "device", "slot", "group", "taken_at", "source_file"):
-        snap[name] = meta[name]
-    # Power-on hours: low 32 bits of attribute 9's raw value; some drives keep minutes or
-    # other counts in the upper bytes (common practice, no source).
-    snap["power_on_hours"] = _pick(n, row, ids, raw & 0xFFFFFFFF, ATA_POWER_ON_HOURS_ID)
-    # Temperature: low byte of attribute 194's raw value in degrees Celsius. This is common
-    # practice across vendors, not defined by the ATA standard.
-    snap["temperature_c"] = _pick(n, row, ids, raw & 0xFF, ATA_TEMPERATURE_ID)
+    capacity = identity["user_capacity_bytes"].to_numpy(np.int64)
+    columns = {
+        "serial": identity["serial"].to_numpy(object), "model": identity["model"].to_numpy(object),
+        "firmware": identity["firmware"].to_numpy(object), "bus": np.full(n, "ata", object),
+        "user_capacity_bytes": capacity, "rotation_rpm": identity["rotation_rpm"].array,
+        "wwn": identity["wwn"].to_numpy(object),
+        # Power-on hours: low 32 bits of attribute 9's raw value; some drives keep minutes or
+        # other counts in the upper bytes (common practice, no source).
+        "power_on_hours": _pick(n, row, ids, raw & 0xFFFFFFFF, ATA_POWER_ON_HOURS_ID),
+        # Temperature: low byte of attribute 194's raw value in degrees Celsius. This is common
+        # practice across vendors, not defined by the ATA standard.
+        "temperature_c": _pick(n, row, ids, raw & 0xFF, ATA_TEMPERATURE_ID),
+    }
     for attr_id, column in ATA_COUNTER_ATTRIBUTES.items():
-        snap[column] = _pick(n, row, ids, raw, attr_id)
-    snap["threshold_tripped"], snap["prefail_tripped"] = _tripped(n, attrs, has_thresholds)
-
+        columns[column] = _pick(n, row, ids, raw, attr_id)
+    columns["threshold_tripped"], columns["prefail_tripped"] = _tripped(n, attrs, has_thresholds)
+    clamped = capacity == INT64_MAX  # 48-bit sectors x sector size beyond int64 (saturated)
+    columns["counters_clamped"] = clamped
+    _add_meta(columns, meta)
     good = ~bad
-    snapshots = snap[good].reset_index(drop=True)
+    snapshots = _table(SNAPSHOTS, columns, n).filter(pa.array(good))
     # One row per attribute per capture: built in Arrow (serial and time taken by index), since
     # it is ten times the snapshot count and goes straight to the store.
-    serial_of = pa.array(identity["serial"].to_numpy(object), pa.string())
-    taken_of = pa.array(meta["taken_at"].array.as_unit("us").asi8, pa.int64())
     take = pa.array(row)
     threshold = attrs["threshold"].array
-    attributes = pa.table({
-        "serial": serial_of.take(take),
-        "taken_at": taken_of.take(take).cast(pa.timestamp("us", tz="UTC")),
-        "attribute_id": pa.array(ids, pa.int32()),
-        "status_flags": pa.array(attrs["status_flags"].to_numpy(), pa.int32()),
-        "normalized": pa.array(attrs["normalized"].to_numpy(), pa.int32()),
-        "worst_normalized": pa.array(attrs["worst_normalized"].to_numpy(), pa.int32()),
+    attributes = _table(ATTRIBUTES, {
+        "serial": pa.array(identity["serial"].to_numpy(object), pa.string()).take(take),
+        "taken_at": pa.array(meta["taken_at"].array.as_unit("us").asi8, pa.int64()).take(take),
+        "attribute_id": ids, "status_flags": attrs["status_flags"].to_numpy(),
+        "normalized": attrs["normalized"].to_numpy(), "worst_normalized": attrs["worst_normalized"].to_numpy(),
         "threshold": pa.array(threshold.to_numpy(dtype=np.int64, na_value=0), pa.int32(), mask=threshold.isna()),
-        "raw_value": pa.array(raw, pa.int64()),
-    })
-    return snapshots, attributes, rejected
+        "raw_value": raw,
+        "_capture": meta["_capture"].to_numpy(np.int64)[row],
+    }, len(row))
+    return CaptureBatch(snapshots, attributes, [], 0, int((clamped & good).sum())), rejected
+
+
+def _add_meta(columns: dict, meta: pd.DataFrame) -> None:
+    columns["host"] = meta["host"].to_numpy(object)
+    columns["device"] = meta["device"].to_numpy(object)
+    columns["slot"] = meta["slot"].to_numpy(object)
+    columns["group"] = meta["group"].to_numpy(object)
+    columns["taken_at"] = pa.array(meta["taken_at"].array.as_unit("us").asi8, pa.int64())
+    columns["_capture"] = meta["_capture"].to_numpy(np.int64)
+    columns["source_file"] = meta["source_file"].to_numpy(object)
 
 
 def _thresholds_of(n: int, thresholds: pd.DataFrame, has_thresholds: np.ndarray, row: np.ndarray,
@@ -382,18 +603,17 @@ def _thresholds_of(n: int, thresholds: pd.DataFrame, has_thresholds: np.ndarray,
     return pd.arrays.IntegerArray(np.maximum(found, 0), found < 0)
 
 
-def _pick(n: int, row: np.ndarray, ids: np.ndarray, values: np.ndarray, attr_id: int) -> pd.Series:
+def _pick(n: int, row: np.ndarray, ids: np.ndarray, values: np.ndarray, attr_id: int) -> pa.Array:
     """Per capture, the value of one attribute id (null where the drive does not report it)."""
     mask = ids == attr_id
     data = np.zeros(n, dtype=np.int64)
     seen = np.zeros(n, dtype=bool)
     data[row[mask]] = values[mask]
     seen[row[mask]] = True
-    out = pd.arrays.IntegerArray(data, ~seen)
-    return pd.Series(out)
+    return pa.array(data, pa.int64(), mask=~seen)
 
 
-def _tripped(n: int, attrs: pd.DataFrame, has_thresholds: np.ndarray):
+def _tripped(n: int, attrs: pd.DataFrame, has_thresholds: np.ndarray) -> tuple[pa.Array, pa.Array]:
     """SMART threshold semantics (SFF-8035i; ATA ACS-3 SMART RETURN STATUS): an attribute has
     crossed its threshold when its normalized value is at or below a non-zero threshold."""
     threshold = attrs["threshold"].fillna(0).to_numpy(np.int64)
@@ -405,35 +625,50 @@ def _tripped(n: int, attrs: pd.DataFrame, has_thresholds: np.ndarray):
     any_crossed[row[crossed]] = True
     any_prefail[row[prefail]] = True
     unknown = ~has_thresholds
-    return (pd.Series(pd.arrays.BooleanArray(any_crossed, unknown)),
-            pd.Series(pd.arrays.BooleanArray(any_prefail, unknown)))
+    return pa.array(any_crossed, mask=unknown), pa.array(any_prefail, mask=unknown)
 
 
-def _decode_nvme(batch: _Pending):
-    meta = _meta_frame(batch, "nvme")
+#: NVMe 128-bit counters kept in int64 columns: log 02h field -> snapshot column.
+NVME_COUNTERS = {
+    "power_on_hours": "power_on_hours",
+    "power_cycles": "power_cycles",
+    "media_errors": "nvme_media_errors",
+    "unsafe_shutdowns": "nvme_unsafe_shutdowns",
+    "error_log_entries": "nvme_error_log_entries",
+}
+
+
+def _decode_nvme(batch: _Pending, sources: dict, now: datetime) -> tuple[CaptureBatch, list]:
+    meta = _meta_frame(batch, "nvme", sources)
+    n = len(meta)
     identity = decode_nvme_identify_batch(_stack(batch.payloads["identify"], 4096))
     health = decode_nvme_health_batch(_stack(batch.payloads["health"], 512))
-    bad, rejected = _common_checks(meta, identity["serial"])
+    bad, rejected = _common_checks(meta, identity["serial"], now)
     written = health["data_units_written"].to_numpy(np.int64)
     # data units of 1000 x 512 bytes; saturate rather than wrap past int64
-    data_written = np.where(written > INT64_MAX // NVME_DATA_UNIT_BYTES, INT64_MAX,
-                            written * NVME_DATA_UNIT_BYTES)
-    snap = pd.DataFrame({
-        "serial": identity["serial"], "model": identity["model"], "firmware": identity["firmware"],
-        "bus": "nvme", "user_capacity_bytes": identity["total_capacity_bytes"],
-        "rotation_rpm": 0,  # NVMe devices are solid state
-    })
-    for name in ("host", "device", "slot", "group", "taken_at", "source_file"):
-        snap[name] = meta[name]
-    snap["power_on_hours"] = health["power_on_hours"]
-    snap["temperature_c"] = health["composite_temperature_k"].astype("int64") - 273  # kelvin -> Celsius
-    snap["power_cycles"] = health["power_cycles"]
-    snap["nvme_critical_warning"] = health["critical_warning"]
-    snap["nvme_spare_pct"] = health["available_spare_pct"]
-    snap["nvme_spare_threshold_pct"] = health["spare_threshold_pct"]
-    snap["nvme_used_pct"] = health["percentage_used"]
-    snap["nvme_media_errors"] = health["media_errors"]
-    snap["nvme_unsafe_shutdowns"] = health["unsafe_shutdowns"]
-    snap["nvme_error_log_entries"] = health["error_log_entries"]
-    snap["data_written_bytes"] = data_written
-    return snap[~bad].reset_index(drop=True), None, rejected
+    too_many = written > INT64_MAX // NVME_DATA_UNIT_BYTES
+    capacity = identity["total_capacity_bytes"].to_numpy(np.int64)
+    columns = {
+        "serial": identity["serial"].to_numpy(object), "model": identity["model"].to_numpy(object),
+        "firmware": identity["firmware"].to_numpy(object), "bus": np.full(n, "nvme", object),
+        "user_capacity_bytes": capacity,
+        "rotation_rpm": np.zeros(n, np.int64),  # NVMe devices are solid state
+        "temperature_c": health["composite_temperature_k"].to_numpy(np.int64) - 273,  # kelvin -> Celsius
+        "nvme_critical_warning": health["critical_warning"].to_numpy(np.int64),
+        "nvme_spare_pct": health["available_spare_pct"].to_numpy(np.int64),
+        "nvme_spare_threshold_pct": health["spare_threshold_pct"].to_numpy(np.int64),
+        "nvme_used_pct": health["percentage_used"].to_numpy(np.int64),
+        "data_written_bytes": np.where(too_many, INT64_MAX, written * NVME_DATA_UNIT_BYTES),
+    }
+    # 128-bit counters beyond int64 come saturated at 2**63-1 from the decoder: flag them.
+    clamped = too_many | (capacity == INT64_MAX)
+    for name, column in NVME_COUNTERS.items():
+        values = health[name].to_numpy(np.int64)
+        columns[column] = values
+        clamped |= values == INT64_MAX
+    columns["counters_clamped"] = clamped
+    _add_meta(columns, meta)
+    good = ~bad
+    snapshots = _table(SNAPSHOTS, columns, n).filter(pa.array(good))
+    return CaptureBatch(snapshots, _with_capture(ATTRIBUTES).empty_table(), [], 0,
+                        int((clamped & good).sum())), rejected

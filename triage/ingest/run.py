@@ -1,22 +1,30 @@
-"""``triage ingest``: capture files and removal logs -> one atomic commit per chunk of files."""
+"""``triage ingest``: capture files and removal logs -> atomic commits of bounded batches of lines."""
 
 from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass, field
+from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Callable, Iterable
 
-from triage.ingest.captures import Rejected, parse_capture_files
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from triage.ingest.captures import BATCH_LINES, CaptureBatch, Rejected, capture_parts
+from triage.ingest.reading import display_name
 from triage.ingest.removals import parse_removal_files
 from triage.store.dataset import SourceRecord, Store
 
+#: Name endings, compared without case (``.JSONL``, ``.jsonl.GZ`` are the same kinds).
 CAPTURE_SUFFIXES = (".jsonl", ".jsonl.gz")
 REMOVAL_SUFFIXES = (".csv",)
-#: Compressed bytes of files per commit: a night of a 100k-drive fleet (~15 MB gzip) in one or
-#: two commits, so each day gets few Parquet parts. Capture text compresses about 30:1, and a
-#: chunk's decoded payloads are held in memory together: this bounds ingest near 1 GB.
-CHUNK_BYTES = 16 * 2**20
+#: Captures per commit, at most: a night of a 100k-drive fleet in one or two commits, so each day
+#: gets few Parquet parts, while a batch of decoded rows stays well under 1 GB whatever the size
+#: of the files (benchmarks/ingest.py measures the peak on a 2 GB file).
+COMMIT_LINES = 4 * BATCH_LINES
+#: Rejected lines whose excerpt the report keeps in memory (all of them are in the quarantine).
+REPORT_TEXTS = 100
 
 
 @dataclass
@@ -25,30 +33,40 @@ class IngestReport:
     files_skipped: int = 0  # already in the manifest (same content)
     lines: int = 0
     stored: dict[str, int] = field(default_factory=dict)
+    #: every rejected line with its reason; the excerpt text is in the quarantine file only
     rejected: list[Rejected] = field(default_factory=list)
+    clamped: int = 0  # captures stored with a counter saturated at 2**63-1
+    rejected_per_file: dict[str, int] = field(default_factory=dict)
+    #: named folders that held nothing to read, one sentence each (never a silent 0)
+    empty_folders: list[str] = field(default_factory=list)
 
     @property
     def new_rows(self) -> int:
         return sum(self.stored.values())
 
 
-def find_inputs(paths: Iterable[Path]) -> list[Path]:
-    """Files named on the command line, and the input files inside named directories."""
+def find_inputs(paths: Iterable[Path], empty: list[str] | None = None) -> list[Path]:
+    """Files named on the command line, and the input files inside named directories; a named
+    directory holding none is added to ``empty`` (as a note for the operator)."""
     found = []
     for path in paths:
         if path.is_dir():
-            found += sorted(p for p in path.rglob("*") if p.is_file() and _kind(p))
+            inside = sorted(p for p in path.rglob("*") if p.is_file() and _kind(p))
+            if not inside and empty is not None:
+                empty.append(f"{display_name(path)}: no capture file (.jsonl, .jsonl.gz) or removal log "
+                             "(.csv) in this folder (names compared without case; hidden files left out)")
+            found += inside
         elif path.is_file():
             if not _kind(path):
-                raise ValueError(f"{path}: not a capture file (.jsonl, .jsonl.gz) or removal log (.csv)")
+                raise ValueError(f"{display_name(path)}: not a capture file (.jsonl, .jsonl.gz) or removal log (.csv)")
             found.append(path)
         else:
-            raise FileNotFoundError(f"{path}: no such file or directory")
+            raise FileNotFoundError(f"{display_name(path)}: no such file or directory")
     return found
 
 
 def _kind(path: Path) -> str | None:
-    name = path.name
+    name = path.name.lower()
     if name.startswith("."):
         return None
     if name.endswith(CAPTURE_SUFFIXES):
@@ -71,10 +89,19 @@ def ingest_paths(
     paths: Iterable[Path],
     *,
     progress: Callable[[int, int], None] | None = None,
+    now: datetime | None = None,
+    workers: int | None = None,
 ) -> IngestReport:
-    """Ingest files (or directories of them) into ``store``; files already ingested are skipped."""
-    files = find_inputs(paths)
+    """Ingest files (or directories of them) into ``store``; files already ingested are skipped.
+
+    Captures are committed in batches of at most ``COMMIT_LINES`` lines, so memory does not grow
+    with the files; a file is listed in the manifest by the commit holding its last line (a run
+    killed half-way through a file reads that file again, and its stored captures add nothing).
+    Captures dated more than ``FUTURE_TOLERANCE`` after ``now`` (default: this machine's clock)
+    are quarantined.
+    """
     report = IngestReport()
+    files = find_inputs(paths, report.empty_folders)
     known = store.ingested_digests()
     todo: list[tuple[Path, str]] = []
     for path in files:
@@ -84,52 +111,89 @@ def ingest_paths(
         else:
             known.add(digest)
             todo.append((path, digest))
-    chunks, chunk, size = [], [], 0
-    for path, digest in todo:
-        chunk.append((path, digest))
-        size += path.stat().st_size
-        if size >= CHUNK_BYTES:
-            chunks.append(chunk)
-            chunk, size = [], 0
-    if chunk:
-        chunks.append(chunk)
+    digests = dict(todo)
+    removals = [p for p, _ in todo if _kind(p) == "removals"]
+    captures = [p for p, _ in todo if _kind(p) == "capture"]
     done = 0
-    for chunk in chunks:
-        _ingest_chunk(store, chunk, report)
-        done += len(chunk)
+    if removals:
+        rows, bad, count = parse_removal_files(removals, now=now)
+        _commit(store, report, {"removals": rows}, bad, count, [(p, digests[p]) for p in removals])
+        done += len(removals)
+        if progress:
+            progress(done, len(todo))
+    parts: list[CaptureBatch] = []
+    finished: list[Path] = []
+    held = 0
+    for batch, files_done in capture_parts(captures, workers=workers, now=now):
+        parts.append(batch)
+        held += batch.lines
+        finished += files_done
+        if held >= COMMIT_LINES:
+            _commit_captures(store, report, parts, [(p, digests[p]) for p in finished])
+            done += len(finished)
+            parts, finished, held = [], [], 0
+            if progress:
+                progress(done, len(todo))
+    if parts or finished:
+        _commit_captures(store, report, parts, [(p, digests[p]) for p in finished])
+        done += len(finished)
         if progress:
             progress(done, len(todo))
     return report
 
 
-def _ingest_chunk(store: Store, chunk: list[tuple[Path, str]], report: IngestReport) -> None:
-    captures = [p for p, _ in chunk if _kind(p) == "capture"]
-    removals = [p for p, _ in chunk if _kind(p) == "removals"]
-    frames = {}
-    rejected: list[Rejected] = []
-    lines = 0
-    if captures:
-        batch = parse_capture_files(captures)
-        frames["snapshots"] = batch.snapshots
-        frames["attributes"] = batch.attributes
-        rejected += batch.rejected
-        lines += batch.lines
-    if removals:
-        removal_rows, bad, count = parse_removal_files(removals)
-        frames["removals"] = removal_rows
-        rejected += bad
-        lines += count
-    per_file_rejects: dict[str, int] = {}
+def _commit_captures(store: Store, report: IngestReport, parts: list[CaptureBatch],
+                     files: list[tuple[Path, str]]) -> None:
+    batch = CaptureBatch.join(parts)
+    snapshots, attributes = first_capture_wins(store, batch.snapshots, batch.attributes)
+    report.clamped += batch.clamped
+    _commit(store, report, {"snapshots": snapshots, "attributes": attributes},
+            batch.rejected, batch.lines, files)
+
+
+def first_capture_wins(store: Store, snapshots: pa.Table, attributes: pa.Table) -> tuple[pa.Table, pa.Table]:
+    """One capture per (serial, taken_at), the same one in both tables: the one already stored,
+    else the first read (file order, then line order). Attribute rows of every other capture
+    with that key are dropped, so a snapshot never sits beside another capture's attributes."""
+    if snapshots.num_rows:
+        keys = pa.table({"serial": snapshots["serial"], "taken_at": snapshots["taken_at"],
+                         "_capture": snapshots["_capture"]})
+        first = keys.group_by(["serial", "taken_at"], use_threads=False).aggregate([("_capture", "min")])
+        kept = first["_capture_min"]
+        stored = _stored_keys(store, snapshots["taken_at"])
+        if stored.num_rows:
+            fresh = first.join(stored, keys=["serial", "taken_at"], join_type="left anti")
+            kept = fresh["_capture_min"]
+        snapshots = snapshots.filter(pc.is_in(snapshots["_capture"], value_set=kept.combine_chunks()))
+        attributes = attributes.filter(pc.is_in(attributes["_capture"], value_set=kept.combine_chunks()))
+    return snapshots.drop_columns(["_capture"]), attributes.drop_columns(["_capture"])
+
+
+def _stored_keys(store: Store, taken_at: pa.ChunkedArray) -> pa.Table:
+    """(serial, taken_at) of the snapshots already stored on the days ``taken_at`` spans."""
+    low, high = pc.min_max(taken_at).values()
+    if not low.is_valid:
+        return pa.table({"serial": pa.array([], pa.string())})
+    until = high.as_py() + timedelta(microseconds=1)
+    stored = store.read("snapshots", columns=["serial", "taken_at"], since=low.as_py(), until=until)
+    return pa.Table.from_pandas(stored, preserve_index=False).cast(
+        pa.schema([("serial", pa.string()), ("taken_at", pa.timestamp("us", tz="UTC"))]))
+
+
+def _commit(store: Store, report: IngestReport, frames: dict, rejected: list[Rejected], lines: int,
+            files: list[tuple[Path, str]]) -> None:
     for r in rejected:
-        per_file_rejects[r.source] = per_file_rejects.get(r.source, 0) + 1
+        report.rejected_per_file[r.source] = report.rejected_per_file.get(r.source, 0) + 1
     sources = [
-        SourceRecord(path=str(p), sha256=d, size=p.stat().st_size,
-                     quarantined=per_file_rejects.get(str(p), 0))
-        for p, d in chunk
+        SourceRecord(path=display_name(p), sha256=d, size=p.stat().st_size,
+                     quarantined=report.rejected_per_file.get(display_name(p), 0))
+        for p, d in files
     ]
     written = store.commit(frames, sources=sources, quarantine=[r.as_record() for r in rejected])
-    report.files_read += len(chunk)
+    report.files_read += len(files)
     report.lines += lines
-    report.rejected += rejected
+    # the excerpts are in the quarantine file; the report keeps the first few (memory)
+    room = max(0, REPORT_TEXTS - len(report.rejected))
+    report.rejected += rejected[:room] + [Rejected(r.source, r.line, r.field, r.reason, "") for r in rejected[room:]]
     for table, count in written.items():
         report.stored[table] = report.stored.get(table, 0) + count

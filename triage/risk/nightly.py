@@ -139,6 +139,7 @@ def run_nightly(
             got = ingest(store, [dumps])
         report.files_read, report.new_rows, report.rejected = got.files_read, got.new_rows, len(got.rejected)
         log(f"ingest: {got.files_read} file(s), {got.new_rows} new row(s), {len(got.rejected)} line(s) quarantined")
+        report.notes += getattr(got, "empty_folders", [])
 
         previous, _ = survival.readable_latest_model(store)  # None also when it cannot be read
         if previous is None or model_age_days(store) >= refit_days:

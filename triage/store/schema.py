@@ -8,7 +8,7 @@ end; never reuse a name with a new meaning.
 
 Integers are signed 64-bit even where the standard field is wider (NVMe counters are 128-bit):
 values beyond 2**63-1 are saturated at that maximum on ingest, which no real drive reaches
-for the counters kept here.
+for the counters kept here; such a snapshot has ``counters_clamped`` true.
 """
 
 from __future__ import annotations
@@ -56,6 +56,8 @@ SNAPSHOTS = pa.schema(
         ("nvme_error_log_entries", pa.int64()),
         ("data_written_bytes", pa.int64()),
         ("source_file", pa.string()),  # capture file name the row came from (provenance)
+        # True when a counter or capacity did not fit int64 and is stored at 2**63-1 (saturated)
+        ("counters_clamped", pa.bool_()),
     ]
 )
 

@@ -1,0 +1,208 @@
+"""Streaming a capture file into lines, with the limits that keep one hostile file harmless.
+
+A capture file is read in blocks, never whole: memory is bounded by a block and one line, not by
+the file. The limits (documented in docs/capture-format.md, "Limits"):
+
+* a line longer than ``MAX_LINE_BYTES`` is rejected without being held whole (its first bytes are
+  kept as the quarantine excerpt, the rest is skipped up to the next newline);
+* gzip input that inflates by more than ``MAX_INFLATE_RATIO`` to 1 (once past
+  ``INFLATE_RATIO_FLOOR`` bytes) stops that file with a reason: real captures inflate 20-35:1
+  (hex of sectors that are mostly zeros, measured on the demo fleet), a "bomb" thousands to one;
+* more than ``MAX_BLANK_LINES`` blank lines in a file are reported (a capture program never
+  writes them); they are counted in blocks, never split into lines one by one.
+
+A gzip file may hold several members (``cat a.gz b.gz``, RFC 1952 section 2.2). Damage inside a
+member keeps the lines before it: they are handed out as they are inflated.
+"""
+
+from __future__ import annotations
+
+import os
+import zlib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import BinaryIO, Iterator
+
+#: A valid line is at most ~9.5 kB (an NVMe capture: 8192 + 1024 hex digits and a few fields).
+MAX_LINE_BYTES = 64 * 1024
+#: The most of a bad line kept in quarantine (the longest valid line fits whole).
+EXCERPT_BYTES = 16 * 1024
+MAX_INFLATE_RATIO = 200
+INFLATE_RATIO_FLOOR = 16 * 2**20
+MAX_BLANK_LINES = 1000
+#: Bytes read from a plain file, or inflated from gzip, per step.
+BLOCK_BYTES = 1 << 20
+#: Compressed bytes fed to the inflater per step: small, so that when a member turns out damaged
+#: (zlib finds it at once or at the member's CRC) the lines inflated before are already handed out.
+GZIP_STEP_BYTES = 2048
+
+
+class FileStopped(Exception):
+    """The rest of a file cannot be read; the lines handed out before stay good."""
+
+
+@dataclass(frozen=True)
+class OversizeLine:
+    """A line over ``MAX_LINE_BYTES``: its length and first ``EXCERPT_BYTES`` bytes only."""
+
+    length: int
+    head: bytes
+
+    def extended(self, more: bytes) -> "OversizeLine":
+        """The same line with ``more`` bytes after it (the head grows up to ``EXCERPT_BYTES``)."""
+        head = self.head if len(self.head) >= EXCERPT_BYTES else (self.head + more[:EXCERPT_BYTES])[:EXCERPT_BYTES]
+        return OversizeLine(self.length + len(more), head)
+
+
+def is_gzip_name(path: Path) -> bool:
+    return path.name.lower().endswith(".gz")
+
+
+def is_utf8_text(text: str) -> bool:
+    """False for text holding a lone surrogate: a byte that was not UTF-8 (read with
+    ``surrogateescape``) or a ``\\udXXX`` escape, neither of which can be stored."""
+    try:
+        text.encode("utf-8")
+        return True
+    except UnicodeEncodeError:
+        return False
+
+
+def display_name(path: Path | str) -> str:
+    """The file name as text that can always be stored and printed: a byte that is not UTF-8
+    (kept by the OS as a lone surrogate) becomes the visible escape ``\\xNN``."""
+    text = os.fspath(path)
+    if isinstance(text, bytes):
+        text = os.fsdecode(text)
+    if is_utf8_text(text):
+        return text
+    return os.fsencode(text).decode("utf-8", errors="backslashreplace")
+
+
+def excerpt(line: bytes | OversizeLine) -> str:
+    """A bad line as quarantine text: at most ``EXCERPT_BYTES`` bytes, undecodable bytes replaced
+    (never dropped silently), a cut line marked with its full length."""
+    if isinstance(line, OversizeLine):
+        head, length = line.head, line.length
+    else:
+        head, length = line[:EXCERPT_BYTES], len(line)
+    text = head.rstrip(b"\r").decode("utf-8", errors="replace")
+    if length > len(head):
+        text += f" [cut: {length} bytes in all]"
+    return text
+
+
+class CaptureLines:
+    """The lines of one capture file, numbered from 1, read block by block.
+
+    Iterating yields ``(number, line)`` with ``line`` the bytes without the newline, or an
+    :class:`OversizeLine`; blank lines are counted in ``blank_lines``, not yielded. A problem
+    that ends the file raises :class:`FileStopped` after the good lines. ``position`` is the
+    (uncompressed) byte offset just past the last line handed out, and ``start`` resumes there.
+    """
+
+    def __init__(self, path: Path, start: int = 0, first_line: int = 1):
+        self.path = path
+        self.start = start
+        self.position = start
+        self.next_line = first_line
+        self.blank_lines = 0
+
+    def __iter__(self) -> Iterator[tuple[int, bytes | OversizeLine]]:
+        with self.path.open("rb") as fh:
+            if is_gzip_name(self.path):
+                yield from self._split(_inflated_blocks(fh), skip=self.start)
+            else:
+                fh.seek(self.start)
+                yield from self._split(iter(lambda: fh.read(BLOCK_BYTES), b""), skip=0)
+
+    def _split(self, blocks: Iterator[bytes], skip: int) -> Iterator[tuple[int, bytes | OversizeLine]]:
+        # Invariant: ``position + len(carry)`` bytes are consumed; ``carry`` is an unfinished line.
+        carry = b""
+        oversize: OversizeLine | None = None  # the line being skipped, when over the limit
+        for block in blocks:
+            if skip:
+                cut = min(skip, len(block))
+                block, skip = block[cut:], skip - cut
+            if oversize is not None:
+                end = block.find(b"\n")
+                rest = block if end < 0 else block[:end]
+                oversize = oversize.extended(rest)
+                if end < 0:
+                    continue
+                line, oversize = oversize, None
+                self.position += line.length + 1
+                yield self._number(), line
+                block = block[end + 1:]
+            if not block.strip() and not carry.strip():
+                # only blank lines (a "bomb of newlines" is this): counted, not split
+                last = block.rfind(b"\n")
+                if last >= 0:
+                    count = block.count(b"\n")
+                    self.blank_lines += count
+                    self.next_line += count
+                    self.position += len(carry) + last + 1
+                    carry = block[last + 1:]
+                else:
+                    carry += block
+            else:
+                lines = (carry + block).split(b"\n")
+                carry = lines.pop()
+                for line in lines:
+                    self.position += len(line) + 1
+                    if not line.strip():
+                        self.blank_lines += 1
+                        self.next_line += 1
+                    elif len(line) > MAX_LINE_BYTES:
+                        yield self._number(), OversizeLine(len(line), line[:EXCERPT_BYTES])
+                    else:
+                        yield self._number(), line
+            if len(carry) > MAX_LINE_BYTES:
+                oversize, carry = OversizeLine(len(carry), carry[:EXCERPT_BYTES]), b""
+        if oversize is not None:
+            self.position += oversize.length
+            yield self._number(), oversize
+        elif carry.strip():  # a last line without its newline is still a line
+            self.position += len(carry)
+            yield self._number(), carry
+
+    def _number(self) -> int:
+        number = self.next_line
+        self.next_line += 1
+        return number
+
+
+def _inflated_blocks(fh: BinaryIO) -> Iterator[bytes]:
+    """The inflated bytes of every gzip member in turn, at most ``BLOCK_BYTES`` per step."""
+    inflater = zlib.decompressobj(16 + zlib.MAX_WBITS)
+    read_in = inflated = 0
+    pending = b""
+    while True:
+        if not pending:
+            pending = fh.read(GZIP_STEP_BYTES)
+            read_in += len(pending)
+            if not pending:
+                break
+        try:
+            out = inflater.decompress(pending, BLOCK_BYTES)
+        except zlib.error as exc:
+            raise FileStopped(f"damaged gzip data: {exc}") from None
+        pending = inflater.unconsumed_tail
+        inflated += len(out)
+        if inflated > INFLATE_RATIO_FLOOR and inflated > MAX_INFLATE_RATIO * read_in:
+            raise FileStopped(
+                f"inflates more than {MAX_INFLATE_RATIO}:1 ({inflated} bytes from the first "
+                f"{read_in}): stopped, not a capture file")
+        if out:
+            yield out
+        if inflater.eof:
+            pending = inflater.unused_data.lstrip(b"\0")  # members may be padded with NULs
+            while not pending:
+                more = fh.read(GZIP_STEP_BYTES)
+                if not more:
+                    return
+                read_in += len(more)
+                pending = more.lstrip(b"\0")
+            inflater = zlib.decompressobj(16 + zlib.MAX_WBITS)
+    if read_in:  # the input ended inside a member: a copy cut short
+        raise FileStopped("gzip data ends early (truncated file)")
