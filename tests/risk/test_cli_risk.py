@@ -116,6 +116,7 @@ def test_nightly_reports_new_flags_and_a_summary_line(store, tmp_path):
     result = _run("nightly", "--dumps", str(dumps), "--out", str(tmp_path / "t.csv"), "--store", str(store.root))
     assert result.exit_code == Exit.NEW_FLAGS, result.output
     assert "nightly: 0 file(s) read" in result.stderr and "1 new / 0 ongoing / 0 not-reporting / 0 cleared" in result.stderr
+    assert "no capture file" in result.stderr  # an empty dumps folder is said, never a quiet night
 
 
 @pytest.mark.parametrize("command", [
