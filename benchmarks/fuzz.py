@@ -6,8 +6,9 @@ What must hold, and is counted:
 
 * no exception escapes ``ingest_paths`` (0 crashes);
 * every valid line is stored (0 lost);
-* every line of a file that is not cut short is either stored or quarantined with a reason
-  (lines stored + lines quarantined == lines written);
+* every line of a file that is not cut short is stored, quarantined with a reason, or counted as
+  a repeat of a capture already read (the same serial and time: a hostile IDENTIFY gives many
+  lines one serial) -- stored + quarantined + repeated == lines written;
 * no day partition lies outside [DATE_FLOOR, now + FUTURE_TOLERANCE];
 * each parser gives a record or a ``LayoutError``, and its batch decoder the same answer.
 
@@ -156,7 +157,8 @@ def fuzz_ingest(n_hostile: int, seed: int, work: Path) -> dict:
         "crashes": crashes, "seconds": round(seconds, 1), "stored": len(stored),
         "quarantined": len(report.rejected) if report else None,
         "valid_lost": lost_valid,
-        "unaccounted_lines": lines_whole - int(whole.sum()) - rejected_whole,
+        "repeated": report.repeated if report else None,
+        "unaccounted_lines": lines_whole - int(whole.sum()) - rejected_whole - (report.repeated if report else 0),
         "days_outside_window": bad_days,
     }
 

@@ -227,7 +227,8 @@ def two_captures_same_key():
 
 def test_one_capture_wins_in_both_tables_within_a_run(tmp_path, write_capture):
     first, second = two_captures_same_key()
-    store, _ = ingest(tmp_path, [write_capture("a.jsonl.gz", [first, second])])
+    store, report = ingest(tmp_path, [write_capture("a.jsonl.gz", [first, second])])
+    assert report.repeated == 1
     snap = store.read("snapshots")
     assert len(snap) == 1 and pd.isna(snap["pending_sectors"].iloc[0])  # the first: no attribute 197
     assert sorted(store.read("attributes")["attribute_id"]) == sorted(a.id for a in ATTRS if a.id != 197)

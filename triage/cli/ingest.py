@@ -44,6 +44,9 @@ def ingest(
         f"stored {stored}; {len(report.rejected)} line(s) quarantined",
         err=True,
     )
+    if report.repeated:
+        typer.echo(f"ingest: {report.repeated} capture(s) repeated a (serial, taken_at) already read; "
+                   "the first one read is kept", err=True)
     if report.clamped:
         typer.echo(f"ingest: {report.clamped} capture(s) hold a counter beyond 2^63-1, stored as "
                    "2^63-1 with counters_clamped set", err=True)

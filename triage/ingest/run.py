@@ -36,6 +36,7 @@ class IngestReport:
     #: every rejected line with its reason; the excerpt text is in the quarantine file only
     rejected: list[Rejected] = field(default_factory=list)
     clamped: int = 0  # captures stored with a counter saturated at 2**63-1
+    repeated: int = 0  # good lines whose (serial, taken_at) was stored already or read earlier
     rejected_per_file: dict[str, int] = field(default_factory=dict)
     #: named folders that held nothing to read, one sentence each (never a silent 0)
     empty_folders: list[str] = field(default_factory=list)
@@ -147,6 +148,7 @@ def _commit_captures(store: Store, report: IngestReport, parts: list[CaptureBatc
     batch = CaptureBatch.join(parts)
     snapshots, attributes = first_capture_wins(store, batch.snapshots, batch.attributes)
     report.clamped += batch.clamped
+    report.repeated += batch.snapshots.num_rows - snapshots.num_rows
     _commit(store, report, {"snapshots": snapshots, "attributes": attributes},
             batch.rejected, batch.lines, files)
 
