@@ -98,7 +98,7 @@ def mutate(rng: random.Random, obj: dict) -> bytes:
             raw[rng.randrange(len(raw))] = rng.randrange(256)
         return bytes(raw).replace(b"\n", b" ")
     if kind == 3:
-        return bytes(raw[: rng.randrange(len(raw))])
+        return bytes(raw[: rng.randrange(1, len(raw))])  # never empty: a blank line is not a line
     if kind == 4:
         at = rng.randrange(len(raw))
         junk = bytes(rng.randrange(256) for _ in range(rng.randint(1, 16))).replace(b"\n", b"")
