@@ -271,3 +271,22 @@ def test_a_file_spread_over_several_commits_is_stored_once_and_listed_last(tmp_p
     assert report.stored["snapshots"] == 7 and len(store.read("snapshots")) == 7
     manifest = store.manifest()
     assert len(manifest) == 4 and [len(m["files"]) for m in manifest] == [0, 0, 0, 1]
+
+
+def test_a_file_that_cannot_be_read_is_quarantined_and_the_rest_stored(tmp_path, write_capture, monkeypatch):
+    from triage.ingest import run
+
+    bad = write_capture("bad.jsonl.gz", [ata_line("QHA1")])
+    good = write_capture("good.jsonl.gz", [ata_line("QHA2")])
+    real = run.file_digest
+
+    def digest(path):
+        if path == bad:
+            raise PermissionError(13, "Permission denied")  # as root, chmod cannot make one
+        return real(path)
+
+    monkeypatch.setattr(run, "file_digest", digest)
+    store, report = ingest(tmp_path, [bad, good])
+    assert list(store.read("snapshots")["serial"]) == ["QHA2"]
+    assert [str(r) for r in report.rejected] == [f"{bad}:1: file unreadable: Permission denied"]
+    assert str(bad) not in {f["path"] for m in store.manifest() for f in m["files"]}  # tried again next run

@@ -1,9 +1,11 @@
 """Capture files (JSON Lines, optionally gzip) -> validated columns -> store rows + quarantine.
 
-The input contract is written down in docs/capture-format.md. Per line only the cheap checks run
-in Python (JSON, required fields, timestamp shape, hex length); the byte layouts are decoded for
-the whole batch at once by the vectorised decoders in ``triage.formats``, which is what keeps
-ingest close to the cost of decoding the JSON alone (benchmarks/ingest.py).
+The input contract is written down in docs/capture-format.md. Lines come from the streaming
+reader (``triage.ingest.reading``) in batches of at most ``BATCH_LINES``. Per line only the cheap
+checks run in Python (JSON, required fields and their types, timestamp shape, hex length); the
+byte layouts are decoded for the whole batch at once by the vectorised decoders in
+``triage.formats``, which is what keeps ingest close to the cost of decoding the JSON alone
+(benchmarks/ingest.py). Every problem becomes one line's (or one file's) ``Rejected`` entry.
 """
 
 from __future__ import annotations
@@ -283,7 +285,7 @@ GROUP_BYTES = 4 * 2**20
 
 
 def _groups(files: list[tuple[int, Path]], workers: int) -> list[list[tuple[int, Path]]]:
-    sizes = [_size(p) for _, p in files]
+    sizes = [file_size(p) for _, p in files]
     target = max(1, min(GROUP_BYTES, sum(sizes) // workers))
     groups, group, held = [], [], 0
     for item, size in zip(files, sizes):
@@ -297,7 +299,8 @@ def _groups(files: list[tuple[int, Path]], workers: int) -> list[list[tuple[int,
     return groups
 
 
-def _size(path: Path) -> int:
+def file_size(path: Path) -> int:
+    """Bytes on disk, 0 when the file cannot be looked at (the reader reports why)."""
     try:
         return path.stat().st_size
     except OSError:

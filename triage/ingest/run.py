@@ -11,7 +11,7 @@ from typing import Callable, Iterable
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from triage.ingest.captures import BATCH_LINES, CaptureBatch, Rejected, capture_parts
+from triage.ingest.captures import BATCH_LINES, CaptureBatch, Rejected, capture_parts, file_size
 from triage.ingest.reading import display_name
 from triage.ingest.removals import parse_removal_files
 from triage.store.dataset import SourceRecord, Store
@@ -105,8 +105,13 @@ def ingest_paths(
     files = find_inputs(paths, report.empty_folders)
     known = store.ingested_digests()
     todo: list[tuple[Path, str]] = []
+    unreadable: list[Rejected] = []
     for path in files:
-        digest = file_digest(path)
+        try:
+            digest = file_digest(path)
+        except OSError as exc:  # left out of the manifest: tried again next run
+            unreadable.append(Rejected(display_name(path), 1, None, f"file unreadable: {exc.strerror or exc}", ""))
+            continue
         if digest in known:
             report.files_skipped += 1
         else:
@@ -116,6 +121,8 @@ def ingest_paths(
     removals = [p for p, _ in todo if _kind(p) == "removals"]
     captures = [p for p, _ in todo if _kind(p) == "capture"]
     done = 0
+    if unreadable:
+        _commit(store, report, {}, unreadable, 0, [])
     if removals:
         rows, bad, count = parse_removal_files(removals, now=now)
         _commit(store, report, {"removals": rows}, bad, count, [(p, digests[p]) for p in removals])
@@ -187,7 +194,7 @@ def _commit(store: Store, report: IngestReport, frames: dict, rejected: list[Rej
     for r in rejected:
         report.rejected_per_file[r.source] = report.rejected_per_file.get(r.source, 0) + 1
     sources = [
-        SourceRecord(path=display_name(p), sha256=d, size=p.stat().st_size,
+        SourceRecord(path=display_name(p), sha256=d, size=file_size(p),
                      quarantined=report.rejected_per_file.get(display_name(p), 0))
         for p, d in files
     ]
