@@ -279,14 +279,15 @@ def capture_parts(
                 yield from _GroupReader(group, now, resume).parts(max_lines)
 
 
-#: Compressed bytes of consecutive files read as one group, at most (fewer when that would leave
-#: a worker idle): one file per host per night is typical, most far smaller than this.
-GROUP_BYTES = 4 * 2**20
+#: Compressed bytes of consecutive files read as one group, at most: about 10,000 lines, so a
+#: group fits in one worker's batch (a longer one is finished in the main process, serially).
+#: Fewer when there would be under 4 groups per worker (idle workers at the end).
+GROUP_BYTES = 2**20
 
 
 def _groups(files: list[tuple[int, Path]], workers: int) -> list[list[tuple[int, Path]]]:
     sizes = [file_size(p) for _, p in files]
-    target = max(1, min(GROUP_BYTES, sum(sizes) // workers))
+    target = max(1, min(GROUP_BYTES, sum(sizes) // (4 * workers)))
     groups, group, held = [], [], 0
     for item, size in zip(files, sizes):
         group.append(item)
