@@ -190,9 +190,10 @@ def test_a_corrupted_gzip_member_keeps_the_lines_before_the_damage(tmp_path):
     assert any("gzip" in r.reason or "bad JSON" in r.reason or "checksum" in r.reason for r in report.rejected)
 
 
-def test_a_gzip_bomb_stops_that_file_with_a_reason(tmp_path, write_capture):
+@pytest.mark.parametrize("byte", [b"\n", b"a"])  # a bomb of blank lines, or of one endless line
+def test_a_gzip_bomb_stops_that_file_with_a_reason(tmp_path, write_capture, byte):
     bomb = tmp_path / "bomb.jsonl.gz"
-    bomb.write_bytes(gzip.compress(b"\n" * (reading.INFLATE_RATIO_FLOOR + 2**22), compresslevel=9))
+    bomb.write_bytes(gzip.compress(byte * (reading.INFLATE_RATIO_FLOOR + 2**22), compresslevel=9))
     good = write_capture("good.jsonl.gz", [ata_line("QHA1")])
     store, report = ingest(tmp_path, [bomb, good])
     assert list(store.read("snapshots")["serial"]) == ["QHA1"]
