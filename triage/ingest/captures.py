@@ -168,8 +168,12 @@ def load_json(line: bytes) -> object:
     except orjson.JSONDecodeError as exc:
         first = exc
     try:
-        obj = json.loads(line.decode("utf-8"), parse_constant=_no_constants)
-    except (ValueError, RecursionError):  # UnicodeDecodeError is a ValueError
+        text = line.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise LineError(None, f"not UTF-8: byte {line[exc.start]:#04x} at column {exc.start + 1}") from None
+    try:
+        obj = json.loads(text, parse_constant=_no_constants)
+    except (ValueError, RecursionError):
         raise LineError(None, f"bad JSON: {first.msg} at column {first.colno}") from None
     if isinstance(obj, dict):
         for name in _STRING_FIELDS + ("taken_at",):
