@@ -173,6 +173,7 @@ def write_day(snap_dir, day, rows, serial, model_ix, bus, poh, temperature, real
         "nvme_error_log_entries": ints(zeros, ~nvme),
         "data_written_bytes": ints(poh[rows] * 10**9),
         "source_file": pa.array(np.full(n, f"bench-{day:03d}.jsonl.gz", dtype=object), type=pa.string()),
+        "counters_clamped": pa.array(np.zeros(n, dtype=bool)),
     }
     table = pa.Table.from_arrays([columns[f.name] for f in SNAPSHOTS], schema=SNAPSHOTS)
     out = snap_dir / f"day={(START + pd.Timedelta(days=day)):%Y-%m-%d}"
