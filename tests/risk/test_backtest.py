@@ -70,7 +70,7 @@ def method(result, name):
 
 
 def test_the_training_period_and_last_night_follow_the_horizon(result):
-    assert result.training_days == 28  # two horizons, at least four weeks
+    assert result.training_days == 28  # one horizon, at least four weeks
     assert result.first_night == pd.Timestamp("2026-01-29", tz="UTC")
     # the last night with ten full days of data after it: the data end on night 79 (2026-03-21 02:00)
     assert result.last_night == pd.Timestamp("2026-03-10", tz="UTC")

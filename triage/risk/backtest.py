@@ -120,9 +120,10 @@ def backtest_store(store, ruleset, horizon_days: float = 30, max_false_alarm: fl
     last_day = pd.Timestamp(days[-1], tz="UTC")
     newest = store.read("snapshots", columns=["taken_at"], since=last_day.to_pydatetime())
     data_end = pd.to_datetime(newest["taken_at"], utc=True).max()
-    # the tool's training period: two horizons, so that the first fit has H days of outcomes on
-    # at least H days of landmarks (and never less than four weeks)
-    training_days = int(max(2 * np.ceil(H), 28))
+    # the tool's training period: one horizon and never less than four weeks -- the first fit
+    # has weekly landmarks over that time, their windows cut at the night (partial windows count
+    # as exposure: section 1 of docs/prediction.md)
+    training_days = int(max(np.ceil(H), 28))
     default_first = data_first + pd.Timedelta(days=training_days)
     default_last = (data_end - pd.Timedelta(days=H)).normalize() - pd.Timedelta(days=1)
     first = default_first if first_night is None else utc(first_night).normalize()

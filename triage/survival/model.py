@@ -96,8 +96,9 @@ class FleetRiskModel:
 
     def __init__(self, horizon_days: float = 30, by: Sequence[str] = ("model",), count_proactive: bool = False,
                  holdout: bool = True, age_sd: float = 0.5, cohort_sd: float = 1.0, shape_sd: float = 0.5,
-                 ridge: float = 0.1):
+                 ridge: float = 0.1, slope_sd: float | None = 1.0):
         self.horizon_days = horizon_days
+        self.slope_sd = slope_sd
         self.by = by
         self.count_proactive = count_proactive
         self.holdout = holdout
@@ -110,12 +111,12 @@ class FleetRiskModel:
         """The ``__init__`` arguments, as saved in ``model.json``."""
         return {"horizon_days": self.horizon_days, "by": list(self.by), "count_proactive": self.count_proactive,
                 "holdout": self.holdout, "age_sd": self.age_sd, "cohort_sd": self.cohort_sd,
-                "shape_sd": self.shape_sd, "ridge": self.ridge}
+                "shape_sd": self.shape_sd, "ridge": self.ridge, "slope_sd": self.slope_sd}
 
     def _landmark_model(self, horizon_days: float | None = None) -> LandmarkModel:
         return LandmarkModel(horizon_days=self.horizon_days if horizon_days is None else horizon_days,
                              by=self.by, age_sd=self.age_sd, cohort_sd=self.cohort_sd, shape_sd=self.shape_sd,
-                             ridge=self.ridge)
+                             ridge=self.ridge, slope_sd=self.slope_sd)
 
     # -- configuration --------------------------------------------------------------------
     def _validated(self) -> None:
