@@ -1,0 +1,124 @@
+"""Charts people would rather look at than read: survival of several cohorts on one chart and
+hazard by age band (the bathtub). Numbers come from ``triage.survival``; nothing is computed here
+beyond converting hours to years for the axes.
+
+Each function returns a matplotlib Figure; ``save_figure`` writes it to .png or .svg and
+``figure_bytes`` gives the PNG bytes for an HTML page. Legends go outside the plotting area so
+they never cover a curve; titles and labels pass ``parse_math=False`` so a cohort named with a
+``$`` stays text.
+"""
+
+from __future__ import annotations
+
+import io
+from pathlib import Path
+
+import numpy as np
+
+from triage.report.safe import printable
+
+HOURS_PER_YEAR = 8766.0
+FIGSIZE = (8.0, 4.6)
+DPI = 100
+
+
+def _pyplot():
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def _legend_outside(ax) -> None:
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0, fontsize=9, frameon=False)
+
+
+def survival_figure(reports):
+    """Kaplan-Meier (delayed entry) of each report's cohort with its 95 % band, one chart.
+
+    Curves start where each cohort first has enough drives at risk (``curves.youngest_entry_hours``)
+    and are conditional on surviving to that age: the legend says the age.
+    """
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=FIGSIZE, dpi=DPI)
+    colours = plt.rcParams["axes.prop_cycle"].by_key()["color"]
+    drawn = 0
+    for i, report in enumerate(reports):
+        curve = report.curves.table
+        colour = colours[i % len(colours)]
+        label = (f"{printable(report.cohort)}: {report.drives} drives, {report.failures} failures"
+                 f" (from {report.curves.youngest_entry_hours / HOURS_PER_YEAR:.1f} y)")
+        if not len(curve) or report.failures == 0:
+            ax.plot([], [], color=colour, label=label + ", no failure: no curve")
+            continue
+        years = curve["age_hours"] / HOURS_PER_YEAR
+        ax.fill_between(years, curve["survival_low"], curve["survival_high"], step="post", alpha=0.15,
+                        color=colour, linewidth=0)
+        ax.step(years, curve["survival"], where="post", color=colour, label=label)
+        drawn += 1
+    if not drawn:
+        ax.text(0.5, 0.5, "no failures in these cohorts yet: no survival curve to draw",
+                transform=ax.transAxes, ha="center", va="center")
+    ax.set_xlabel("age (power-on years)")
+    ax.set_ylabel("fraction still working (95 % band)")
+    ax.set_title("Survival by age, Kaplan-Meier with delayed entry", parse_math=False)
+    ax.grid(alpha=0.3)
+    _legend_outside(ax)
+    fig.tight_layout()
+    return fig
+
+
+def hazard_figure(bands_by_label: dict):
+    """Annualized hazard by age band with 95 % limits (the bathtub), one series per label.
+
+    ``bands_by_label``: label -> ``hazard_by_age_band`` table (band, age_from_hours, age_to_hours,
+    drive_days, failures, hazard, hazard_low, hazard_high; hazard in % per year).
+    """
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=FIGSIZE, dpi=DPI)
+    count = max(len(bands_by_label), 1)
+    width = 0.8 / count
+    names: list[str] = []
+    any_exposure = False
+    for i, (label, bands) in enumerate(bands_by_label.items()):
+        names = names or list(bands["band"])
+        seen = (bands["drive_days"] > 0).to_numpy()
+        if not seen.any():
+            continue
+        any_exposure = True
+        x = (np.arange(len(bands)) + (i - (count - 1) / 2) * width)[seen]
+        hazard = bands["hazard"].to_numpy(dtype=float)[seen]
+        low = np.clip(hazard - bands["hazard_low"].to_numpy(dtype=float)[seen], 0, None)
+        high = np.clip(bands["hazard_high"].to_numpy(dtype=float)[seen] - hazard, 0, None)
+        failures = int(bands["failures"].sum())
+        ax.bar(x, hazard, width=width * 0.9, yerr=[low, high], capsize=3,
+               label=f"{printable(label)} ({failures} failures)")
+    if not any_exposure:
+        ax.text(0.5, 0.5, "no drive-days observed", transform=ax.transAxes, ha="center", va="center")
+    ax.set_xticks(np.arange(len(names)), names, rotation=20, ha="right")
+    ax.set_xlabel("age band (power-on time)")
+    ax.set_ylabel("hazard, % per drive-year (95 % limits)")
+    ax.set_title("Failure rate by age band (the bathtub)", parse_math=False)
+    ax.grid(alpha=0.3, axis="y")
+    _legend_outside(ax)
+    fig.tight_layout()
+    return fig
+
+
+def save_figure(fig, path: Path) -> Path:
+    path = Path(path)
+    if path.suffix.lower() not in (".png", ".svg"):
+        raise ValueError(f"{path}: the plot file must end in .png or .svg")
+    fig.savefig(path)
+    _pyplot().close(fig)
+    return path
+
+
+def figure_bytes(fig) -> bytes:
+    """PNG bytes of ``fig`` (for a data: URI), then closes it."""
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="png")
+    _pyplot().close(fig)
+    return buffer.getvalue()
