@@ -7,7 +7,7 @@ For a dashboard and alerting stack to scrape from a file. Every number comes fro
   interleaved; the exposition ends with ``# EOF`` (spec: "Overall Structure");
 * label values are UTF-8 with backslash, double quote and line feed escaped as ``\\\\``,
   ``\\"`` and ``\\n`` (spec: "Escaping"), so a hostile firmware string cannot end a label
-  early or start a new sample;
+  early or start a new sample; other control characters are shown as ``\\xNN`` text;
 * only finite values are written: a drive without a model probability has no sample (the
   ``triage_model_available`` gauge says why), never a made-up zero.
 """
@@ -19,12 +19,18 @@ from typing import Iterable
 
 import pandas as pd
 
+from triage.report.safe import printable
 from triage.risk.score import SEVERITIES
 
 
 def escape_label_value(value) -> str:
-    """OpenMetrics label-value escaping: ``\\`` -> ``\\\\``, ``"`` -> ``\\"``, line feed -> ``\\n``."""
-    text = "" if value is None or (isinstance(value, float) and math.isnan(value)) else str(value)
+    """OpenMetrics label-value escaping: ``\\`` -> ``\\\\``, ``"`` -> ``\\"``, line feed -> ``\\n``.
+
+    Other control and format characters (ESC, bidi overrides) are legal in a label value but
+    would act on the terminal of whoever reads the file: ``safe.printable`` shows them as ``\\xNN``
+    first, keeping the line feed for the spec's own escape.
+    """
+    text = printable(value, keep="\n")
     return text.replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n")
 
 

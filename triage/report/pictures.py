@@ -31,8 +31,10 @@ def _pyplot():
     return plt
 
 
-def _legend_outside(ax) -> None:
-    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0, fontsize=9, frameon=False)
+def _legend_below(ax) -> None:
+    """Legend under the axes, never over the data; saving with bbox_inches="tight" keeps it."""
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.16), borderaxespad=0.0, fontsize=9, frameon=False,
+              ncol=1)
 
 
 def survival_figure(reports):
@@ -65,8 +67,7 @@ def survival_figure(reports):
     ax.set_ylabel("fraction still working (95 % band)")
     ax.set_title("Survival by age, Kaplan-Meier with delayed entry", parse_math=False)
     ax.grid(alpha=0.3)
-    _legend_outside(ax)
-    fig.tight_layout()
+    _legend_below(ax)
     return fig
 
 
@@ -95,6 +96,12 @@ def hazard_figure(bands_by_label: dict):
         failures = int(bands["failures"].sum())
         ax.bar(x, hazard, width=width * 0.9, yerr=[low, high], capsize=3,
                label=f"{printable(label)} ({failures} failures)")
+    tops = [b["hazard"].max() for b in bands_by_label.values() if (b["drive_days"] > 0).any()]
+    top = np.nanmax(tops) if tops and np.isfinite(np.nanmax(tops)) else 0.0
+    if top > 0 and ax.get_ylim()[1] > 3 * top:  # a thin band's huge upper limit would flatten the bars
+        ax.set_ylim(0, 3 * top)
+        ax.text(0.99, 0.98, "limits above the frame are cut", transform=ax.transAxes, ha="right", va="top",
+                fontsize=8, color="0.35")
     if not any_exposure:
         ax.text(0.5, 0.5, "no drive-days observed", transform=ax.transAxes, ha="center", va="center")
     ax.set_xticks(np.arange(len(names)), names, rotation=20, ha="right")
@@ -102,8 +109,7 @@ def hazard_figure(bands_by_label: dict):
     ax.set_ylabel("hazard, % per drive-year (95 % limits)")
     ax.set_title("Failure rate by age band (the bathtub)", parse_math=False)
     ax.grid(alpha=0.3, axis="y")
-    _legend_outside(ax)
-    fig.tight_layout()
+    _legend_below(ax)
     return fig
 
 
@@ -111,7 +117,7 @@ def save_figure(fig, path: Path) -> Path:
     path = Path(path)
     if path.suffix.lower() not in (".png", ".svg"):
         raise ValueError(f"{path}: the plot file must end in .png or .svg")
-    fig.savefig(path)
+    fig.savefig(path, bbox_inches="tight")
     _pyplot().close(fig)
     return path
 
@@ -119,6 +125,6 @@ def save_figure(fig, path: Path) -> Path:
 def figure_bytes(fig) -> bytes:
     """PNG bytes of ``fig`` (for a data: URI), then closes it."""
     buffer = io.BytesIO()
-    fig.savefig(buffer, format="png")
+    fig.savefig(buffer, format="png", bbox_inches="tight")
     _pyplot().close(fig)
     return buffer.getvalue()

@@ -24,14 +24,17 @@ def _escaped(char: str) -> str:
     return char
 
 
-def printable(value) -> str:
-    """``value`` as text with control and format characters shown as escapes; None/NaN -> ''."""
+def printable(value, keep: str = "") -> str:
+    """``value`` as text with control and format characters shown as escapes; None/NaN -> ''.
+
+    Characters in ``keep`` pass through (a format with its own escape for them, e.g. line feed).
+    """
     if value is None or (isinstance(value, float) and math.isnan(value)):
         return ""
     text = str(value)
     if text.isprintable():
         return text
-    return "".join(_escaped(c) for c in text)
+    return "".join(c if c in keep else _escaped(c) for c in text)
 
 
 def for_terminal(value) -> str:

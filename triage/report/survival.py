@@ -192,6 +192,21 @@ def survival_record(report) -> dict:
     return plain
 
 
+def render_survivals(reports: list, fmt, out: TextIO | None = None) -> None:
+    """Several cohorts: one report's output as ``render_survival``; more: a JSON list, one CSV of
+    the curves with the cohort as first column, or one set of tables per cohort."""
+    out = out or sys.stdout
+    fmt = getattr(fmt, "value", fmt)
+    if len(reports) == 1 or fmt == "table":
+        for report in reports:
+            render_survival(report, fmt, out)
+    elif fmt == "json":
+        _write_json([survival_record(report) for report in reports], out)
+    else:
+        _write_csv(pd.concat([r.curves.table.assign(cohort=r.cohort)[["cohort", *r.curves.table.columns]]
+                              for r in reports], ignore_index=True), out)
+
+
 def render_survival(report, fmt: str, out: TextIO | None = None, console=None) -> None:
     """Table, JSON (everything), or CSV (the survival curve, one row per failure age)."""
     out = out or sys.stdout
