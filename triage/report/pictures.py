@@ -20,6 +20,9 @@ from triage.report.safe import printable
 HOURS_PER_YEAR = 8766.0
 FIGSIZE = (8.0, 4.6)
 DPI = 100
+#: A band with less exposure than this is not drawn: its limits would span the whole chart
+#: (common practice, no source).
+MIN_DRIVE_YEARS = 1.0
 
 
 def _pyplot():
@@ -31,9 +34,12 @@ def _pyplot():
     return plt
 
 
-def _legend_below(ax) -> None:
-    """Legend under the axes, never over the data; saving with bbox_inches="tight" keeps it."""
-    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.16), borderaxespad=0.0, fontsize=9, frameon=False,
+def _legend_below(ax, drop: float = 0.16) -> None:
+    """Legend under the axes (``drop`` axes-heights below), never over the data; saving with
+    bbox_inches="tight" keeps it in the file."""
+    if not ax.get_legend_handles_labels()[0]:
+        return
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -drop), borderaxespad=0.0, fontsize=9, frameon=False,
               ncol=1)
 
 
@@ -83,9 +89,12 @@ def hazard_figure(bands_by_label: dict):
     width = 0.8 / count
     names: list[str] = []
     any_exposure = False
+    colours = plt.rcParams["axes.prop_cycle"].by_key()["color"]
+    thin = False
     for i, (label, bands) in enumerate(bands_by_label.items()):
         names = names or list(bands["band"])
-        seen = (bands["drive_days"] > 0).to_numpy()
+        seen = (bands["drive_days"] >= MIN_DRIVE_YEARS * 365.0).to_numpy()
+        thin |= bool(((bands["drive_days"] > 0) & ~seen).any())
         if not seen.any():
             continue
         any_exposure = True
@@ -94,8 +103,9 @@ def hazard_figure(bands_by_label: dict):
         low = np.clip(hazard - bands["hazard_low"].to_numpy(dtype=float)[seen], 0, None)
         high = np.clip(bands["hazard_high"].to_numpy(dtype=float)[seen] - hazard, 0, None)
         failures = int(bands["failures"].sum())
-        ax.bar(x, hazard, width=width * 0.9, yerr=[low, high], capsize=3,
-               label=f"{printable(label)} ({failures} failures)")
+        colour = colours[i % len(colours)]
+        ax.bar(x, hazard, width=width * 0.9, color=colour, label=f"{printable(label)} ({failures} failures)")
+        ax.errorbar(x, hazard, yerr=[low, high], fmt="none", ecolor=colour, elinewidth=1, capsize=3, alpha=0.8)
     tops = [b["hazard"].max() for b in bands_by_label.values() if (b["drive_days"] > 0).any()]
     top = np.nanmax(tops) if tops and np.isfinite(np.nanmax(tops)) else 0.0
     if top > 0 and ax.get_ylim()[1] > 3 * top:  # a thin band's huge upper limit would flatten the bars
@@ -105,11 +115,12 @@ def hazard_figure(bands_by_label: dict):
     if not any_exposure:
         ax.text(0.5, 0.5, "no drive-days observed", transform=ax.transAxes, ha="center", va="center")
     ax.set_xticks(np.arange(len(names)), names, rotation=20, ha="right")
-    ax.set_xlabel("age band (power-on time)")
+    ax.set_xlabel("age band (power-on time)" + (f"; bands under {MIN_DRIVE_YEARS:g} drive-year left out"
+                                                 if thin else ""))
     ax.set_ylabel("hazard, % per drive-year (95 % limits)")
     ax.set_title("Failure rate by age band (the bathtub)", parse_math=False)
     ax.grid(alpha=0.3, axis="y")
-    _legend_below(ax)
+    _legend_below(ax, drop=0.26)
     return fig
 
 
