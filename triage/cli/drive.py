@@ -9,7 +9,7 @@ from typing import Optional
 import typer
 
 from triage.cli.common import StoreOption, app, check_output_file, existing_store, fail
-from triage.cli.risk import RulesOption, _risk_inputs
+from triage.cli.risk import GroupConfigOption, NoDefaultRulesOption, RulesOption, _risk_inputs
 from triage.exitcodes import Exit
 
 
@@ -24,8 +24,8 @@ def drive(
     fmt: DriveFormat = typer.Option(DriveFormat.table, "--format", help="table: the story; json: with the raw series."),
     plot: Optional[Path] = typer.Option(None, "--plot", help="Also draw the counter history (.png or .svg)."),
     rules: Optional[list[Path]] = RulesOption,
-    no_default_rules: bool = typer.Option(False, "--no-default-rules", help="Use only the rule folders given."),
-    group_config: Optional[Path] = typer.Option(None, "--group-config", help="Group tolerance file (groups.toml format)."),
+    no_default_rules: bool = NoDefaultRulesOption,
+    group_config: Optional[Path] = GroupConfigOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
     """One drive: identity, place and group state, rule hits with evidence, P(fail) and what drives

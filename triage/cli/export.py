@@ -10,7 +10,7 @@ from typing import Optional
 import typer
 
 from triage.cli.common import StoreOption, app, check_output_file, existing_store, fail
-from triage.cli.risk import RulesOption, _risk_inputs
+from triage.cli.risk import GroupConfigOption, NoDefaultRulesOption, RulesOption, _risk_inputs
 from triage.exitcodes import Exit
 
 OpenMetricsOption = typer.Option(None, "--openmetrics", help="OpenMetrics text file to write (atomic replace).")
@@ -45,8 +45,8 @@ def write_views(store, ruleset, config, *, openmetrics: Optional[Path] = None, h
 def export(
     openmetrics: Optional[Path] = OpenMetricsOption,
     rules: Optional[list[Path]] = RulesOption,
-    no_default_rules: bool = typer.Option(False, "--no-default-rules", help="Use only the rule folders given."),
-    group_config: Optional[Path] = typer.Option(None, "--group-config", help="Group tolerance file (groups.toml format)."),
+    no_default_rules: bool = NoDefaultRulesOption,
+    group_config: Optional[Path] = GroupConfigOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Write the fleet tonight (P(fail) per drive, flags, cohort AFR with limits, group loss
@@ -64,8 +64,8 @@ def report(
     html: Optional[Path] = HtmlOption,
     top: int = typer.Option(25, "--top", min=1, help="Drives in the page's ranked list."),
     rules: Optional[list[Path]] = RulesOption,
-    no_default_rules: bool = typer.Option(False, "--no-default-rules", help="Use only the rule folders given."),
-    group_config: Optional[Path] = typer.Option(None, "--group-config", help="Group tolerance file (groups.toml format)."),
+    no_default_rules: bool = NoDefaultRulesOption,
+    group_config: Optional[Path] = GroupConfigOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Write one self-contained HTML page (no network, pictures inline): ranked drives, degraded
