@@ -94,6 +94,17 @@ def test_terminal_story_shows_hostile_strings_as_text_and_never_emits_escape_byt
     assert "\\x1b[31m[b]" in out  # the escape shown as text, the markup not eaten by rich
     assert "<script>" in out  # harmless on a terminal, shown as it is
     assert "P(fail within 30 d)" in out and "pending sectors" in out
+    assert "captures have stopped arriving" in out  # the simulated fleet ends in February 2026
+
+
+def test_a_failed_drive_shows_its_removal_and_no_probability(fleet):
+    truth = fleet["truth"]
+    failed = sorted(truth.loc[truth["failed"], "serial"])[0]
+    result = run("drive", failed, "--format", "json", "--store", str(fleet["root"]))
+    assert result.exit_code == Exit.OK, result.output
+    record = json.loads(result.stdout)
+    assert record["removal"]["reason"] in ("failed", "proactive")
+    assert record["p_fail"] is None and record["rank"] is None
 
 
 def test_plot_is_written_and_a_missing_folder_is_an_error(fleet, tmp_path):

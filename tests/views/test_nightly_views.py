@@ -10,7 +10,7 @@ from typer.testing import CliRunner
 
 from triage.cli import app
 from triage.exitcodes import Exit
-from triage.risk.fleet import not_reporting_hosts
+from triage.risk.fleet import not_reporting_hosts, stale_age_hours
 
 runner = CliRunner()
 
@@ -47,3 +47,10 @@ def test_a_host_silent_past_the_threshold_is_not_reporting_and_a_removed_drive_d
     quiet = not_reporting_hosts(recent, removals, t.to_pydatetime(), hours=36)
     assert quiet["host"].tolist() == ["ash-2"]
     assert quiet["silent_hours"].iloc[0] == 40 and quiet["drives"].iloc[0] == 1
+
+
+def test_data_older_than_36_hours_is_stale_and_no_data_is_never_fresh():
+    t = pd.Timestamp("2026-11-20T02:00Z")
+    assert stale_age_hours(t, t + pd.Timedelta(hours=35)) is None
+    assert stale_age_hours(t, t + pd.Timedelta(hours=37)) == 37
+    assert stale_age_hours(None) == float("inf")

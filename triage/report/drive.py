@@ -18,6 +18,7 @@ from rich.table import Table
 from triage.report.console import stdout_console
 from triage.report.safe import for_terminal as t
 from triage.report.safe import printable
+from triage.risk.fleet import STALE_HOURS, stale_age_hours
 
 #: Eight heights, lowest first (Unicode "Block Elements" U+2581..U+2588).
 SPARK_GLYPHS = "\u2581\u2582\u2583\u2584\u2585\u2586\u2587\u2588"
@@ -147,6 +148,10 @@ def render_drive_table(story) -> None:
     say(f"WWN {t(ident.get('wwn') or '-')}  device {t(ident.get('device') or '?')}"
         f"  at {t(ident.get('host') or '?')} slot {t(ident.get('slot') or '?')}")
     say(f"last seen {_when(story.last_seen)}; newest capture in the store {_when(story.as_of)}")
+    age = stale_age_hours(story.as_of)
+    if age is not None:
+        say(f"[bold yellow]warning:[/] the newest capture is {age:,.0f} hours old (over {STALE_HOURS:g} h): "
+            "captures have stopped arriving")
     if story.removal is not None:
         say(f"[bold]removed[/bold] {_when(story.removal.get('removed_at'))} "
             f"({t(story.removal.get('reason'))}{': ' + t(story.removal.get('note')) if story.removal.get('note') else ''})")

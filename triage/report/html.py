@@ -16,11 +16,9 @@ import pandas as pd
 
 from triage.report.pictures import figure_bytes, hazard_figure, survival_figure
 from triage.report.safe import for_html as h
+from triage.risk.fleet import STALE_HOURS, stale_age_hours
 from triage.risk.score import DEGRADED_CAUTION
 
-#: Warn on the page when the newest capture is older than this when the page is written
-#: (one missed nightly run plus slack; the on-call view's threshold).
-STALE_HOURS = 36.0
 #: Cohorts next to the whole fleet on the hazard-by-age chart.
 HAZARD_COHORTS = 3
 
@@ -143,13 +141,12 @@ def html_page(state, top: int = 25, now: datetime | None = None) -> str:
     """The whole page as a string (UTF-8)."""
     now = now or datetime.now(timezone.utc)
     stale = ""
+    age_hours = stale_age_hours(state.as_of, now)
     if state.as_of is None:
         stale = '<p class="stale">The store holds no captures: nothing below is news.</p>'
-    else:
-        age_hours = (pd.Timestamp(now) - pd.Timestamp(state.as_of)) / pd.Timedelta(hours=1)
-        if age_hours > STALE_HOURS:
-            stale = (f'<p class="stale">The newest capture is {age_hours:,.0f} hours old (over {STALE_HOURS:g} h): '
-                     "captures have stopped arriving; this page is not tonight's fleet.</p>")
+    elif age_hours is not None:
+        stale = (f'<p class="stale">The newest capture is {age_hours:,.0f} hours old (over {STALE_HOURS:g} h): '
+                 "captures have stopped arriving; this page is not tonight's fleet.</p>")
     notes = "".join(f"<li>{h(n)}</li>" for n in state.notes)
     sections = [
         ("Drives to look at, most urgent first", _ranked(state, top)),

@@ -9,19 +9,34 @@ stopped reporting.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from datetime import datetime, timedelta
+from datetime import datetime, timedelta, timezone
 
 import pandas as pd
 
 from triage.risk.rank import RankResult, _latest_model, rank_store
 
-#: A host whose newest capture is this much older than the store's newest is not reporting;
-#: matches the on-call view's staleness threshold (36 h: one missed nightly run plus slack).
-NOT_REPORTING_HOURS = 36.0
+#: Data older than this is stale, and a host whose newest capture is this much older than the
+#: store's newest is not reporting (36 h: one missed nightly run plus slack; the on-call view's
+#: threshold, common practice, no source).
+STALE_HOURS = 36.0
+NOT_REPORTING_HOURS = STALE_HOURS
 #: How far back to look for hosts that went quiet (older silence is a decommissioned host).
 NOT_REPORTING_LOOKBACK_DAYS = 14
 #: Cohorts drawn on the survival chart: the largest ones (a chart with more lines is unreadable).
 PICTURED_COHORTS = 6
+
+
+def stale_age_hours(as_of: datetime | None, now: datetime | None = None,
+                    threshold: float = STALE_HOURS) -> float | None:
+    """Hours since ``as_of`` when that is more than ``threshold`` (the data is stale), else None.
+
+    No data at all (``as_of`` None) is infinitely stale: never news.
+    """
+    if as_of is None:
+        return float("inf")
+    now = now or datetime.now(timezone.utc)
+    age = (pd.Timestamp(now) - pd.Timestamp(as_of)) / pd.Timedelta(hours=1)
+    return float(age) if age > threshold else None
 
 
 @dataclass
