@@ -13,34 +13,13 @@ from tests.views.conftest import HOSTILE
 from triage.cli import app
 from triage.exitcodes import Exit
 from triage.report.drive import SPARK_GLYPHS, sparkline
-from triage.risk.drive import close_serials, hazard_terms
+from triage.risk.drive import close_serials
 
 runner = CliRunner()
 
 
 def run(*args, **env):
     return runner.invoke(app, [*args], env={"COLUMNS": "120", **env})
-
-
-def test_hazard_factors_multiply_to_the_relative_hazard_of_an_independent_cox_fit():
-    # lifelines' CoxPHFitter.predict_partial_hazard is exp((x - mean(x_train)) . beta)
-    # (lifelines docs, CoxPHFitter.predict_partial_hazard): the product of our factors must equal it.
-    from lifelines import CoxPHFitter
-
-    rng = np.random.default_rng(3)
-    n = 400
-    x = pd.DataFrame({"any_pending": rng.uniform(size=n) < 0.3, "log_reallocated": rng.exponential(1.0, n)},
-                     dtype=float)
-    duration = rng.exponential(1.0 / np.exp(0.8 * x["any_pending"] + 0.3 * x["log_reallocated"]))
-    frame = x.assign(T=duration, E=1)
-    cph = CoxPHFitter().fit(frame, duration_col="T", event_col="E")
-    centre = pd.Series(cph._norm_mean, index=x.columns)
-    for i in (0, 5, 17):
-        terms = hazard_terms(x.iloc[i], cph.params_, centre)
-        expected = float(cph.predict_partial_hazard(x.iloc[[i]]).iloc[0])
-        assert np.exp(terms["term"].sum()) == pytest.approx(expected, rel=1e-9)
-        assert terms["factor"].prod() == pytest.approx(expected, rel=1e-9)
-    assert list(terms["term"].abs()) == sorted(terms["term"].abs(), reverse=True)  # largest effect first
 
 
 def test_json_carries_the_contract_keys_and_every_capture(fleet):
@@ -58,16 +37,31 @@ def test_json_carries_the_contract_keys_and_every_capture(fleet):
     assert any(f["rule_id"] == "media.pending-present" for f in record["flags"])
 
 
-def test_p_fail_is_the_saved_models_and_its_factors_give_the_models_relative_hazard(fleet):
+def test_p_fail_is_the_ranked_lists(fleet):
+    serial = fleet["hostile_serial"]
+    record = json.loads(run("drive", serial, "--format", "json", "--store", str(fleet["root"])).stdout)
+    ranked = json.loads(run("rank", "--top", "10000", "--format", "json", "--store", str(fleet["root"])).stdout)
+    assert record["p_fail"] == pytest.approx(next(r["p_fail"] for r in ranked if r["serial"] == serial))
+
+
+def test_rate_factors_are_the_published_rate_ratios_and_multiply_to_the_drives_rate_ratio(fleet):
+    # log link: each covariate multiplies the rate by exp(beta_k x_k) = rate_ratio_k ** x_k, and
+    # the rate over the same drive with x = 0 is their product (McCullagh & Nelder, GLM, 2nd ed., 6.2)
     serial = fleet["hostile_serial"]
     record = json.loads(run("drive", serial, "--format", "json", "--store", str(fleet["root"])).stdout)
     model = fleet["model"]
-    latest = fleet["snapshots"][fleet["snapshots"]["serial"] == serial].sort_values("taken_at").tail(1)
-    assert record["p_fail"] == pytest.approx(float(model.predict_fail_probability(latest).iloc[0]))
-    details = model.predict_details(latest)
-    assert record["relative_hazard"] == pytest.approx(float(details["relative_hazard"].iloc[0]), rel=1e-6)
-    product = np.prod([c["factor"] for c in record["contributions"]])
-    assert product == pytest.approx(record["relative_hazard"], rel=1e-6)
+    ratios = model.coefficients()["rate_ratio"]
+    factors = {c["covariate"]: c for c in record["contributions"]}
+    assert set(factors) == set(ratios.index)
+    for name, row in factors.items():
+        assert row["factor"] == pytest.approx(ratios[name] ** row["value"], rel=1e-9)
+    history = fleet["snapshots"][fleet["snapshots"]["serial"] == serial].sort_values("taken_at")
+    states = model.states(history.tail(1), history)
+    zeroed = states.copy()
+    zeroed[list(ratios.index)] = 0.0
+    expected = model.landmark_.rate_per_day(states)[0] / model.landmark_.rate_per_day(zeroed)[0]
+    assert record["rate_ratio"] == pytest.approx(expected, rel=1e-9)
+    assert record["rate_ratio"] == pytest.approx(np.prod([c["factor"] for c in record["contributions"]]))
 
 
 def test_an_unknown_serial_is_one_line_naming_it_with_a_close_match(fleet):

@@ -113,7 +113,7 @@ def drive_record(story) -> dict:
         "score": _plain(ranked.get("score")),
         "severity": _plain(ranked.get("severity")),
         "action": _plain(ranked.get("action")),
-        "relative_hazard": _plain(story.relative_hazard),
+        "rate_ratio": _plain(story.rate_ratio),
         "contributions": [{k: _plain(v) for k, v in row.items()} for row in story.contributions.to_dict("records")],
         "group_state": None if story.group is None else {k: _plain(v) for k, v in story.group.items()},
         "group_members": [{k: _plain(v) for k, v in r.items()} for r in story.group_members.to_dict("records")],
@@ -231,8 +231,8 @@ def _risk_lines(story, say) -> None:
         say(f"P(fail {horizon}): n/a" + (" (no saved model)" if story.horizon_days is None else ""))
         return
     say(f"P(fail within {horizon}): [bold]{story.p_fail:.2%}[/bold]"
-        + (f"; failure rate {story.relative_hazard:.2f} x that of a drive of its cohort and age "
-           "with typical counters" if story.relative_hazard is not None else ""))
+        + (f"; failure rate {story.rate_ratio:.2f} x that of a drive of its cohort and age "
+           "with no warning and no growth" if story.rate_ratio is not None else ""))
     moving = story.contributions[story.contributions["term"].abs() > 0.01] if len(story.contributions) else []
     for row in (moving.head(5).itertuples(index=False) if len(moving) else []):
         say(f"  {t(row.covariate)} = {row.value:g}: x {row.factor:.2f}")

@@ -3,17 +3,13 @@ to fail and why, and how its counters moved.
 
 What pushes P(fail) up or down
 ------------------------------
-The fleet model is proportional-hazards (``triage.survival.model``): a drive's hazard is its
-cohort's baseline at its age times the relative hazard ``exp(beta . (x - centre))``. A sum in the
-exponent is a product of one factor per covariate (Cox, "Regression models and life-tables",
-JRSS B 34, 1972, eq. 2; Klein & Moeschberger, Survival Analysis, 2nd ed., 8.1)::
-
-    exp(beta . (x - centre)) = prod_k exp(beta_k * (x_k - centre_k))
-
-so ``factor_k = exp(beta_k * (x_k - centre_k))`` is how many times this drive's failure rate is
-that of a drive of the same cohort and age at the fleet's covariate centre, from covariate ``k``
-alone; factors multiply, their logs (``term_k``) add. The baseline (age, cohort) is the rest of
-the story and is shown as the probability a centre drive of that age would have.
+The fleet model (``triage.survival.model``) is a log-linear rate model: the drive's failure rate
+over the next H days is ``exp(b0 + age + cohort + beta . x)``, so each covariate multiplies the
+rate by its own factor ``exp(beta_k * x_k)`` and the factors of a drive multiply (McCullagh &
+Nelder, Generalized Linear Models, 2nd ed., 6.2, multiplicative effects of a log link). The
+model reports them (``predict_details``' ``factor_*`` columns); this view lists them, largest
+effect first, and their product: how many times the drive's rate is that of a drive of the same
+cohort and age with every covariate at zero (no warning, no growth).
 """
 
 from __future__ import annotations
@@ -40,7 +36,7 @@ HISTORY_FIELDS = (
 IDENTITY_FIELDS = ("model", "firmware", "bus", "capacity_bytes", "rotation_rpm", "wwn", "host", "device",
                    "slot", "group")
 FLAG_FIELDS = ("rule_id", "severity", "category", "title", "evidence")
-CONTRIBUTION_COLUMNS = ("covariate", "value", "centre", "coef", "term", "factor")
+CONTRIBUTION_COLUMNS = ("covariate", "value", "term", "factor")  # term = log(factor)
 
 
 class UnknownDrive(LookupError):
@@ -60,18 +56,13 @@ def close_serials(serial: str, known, n: int = 3) -> list[str]:
     return (folded + [k for k in difflib.get_close_matches(serial, known, n=n, cutoff=0.6) if k not in folded])[:n]
 
 
-def hazard_terms(features: pd.Series, coef: pd.Series, centre: pd.Series) -> pd.DataFrame:
-    """One row per covariate: value, centre, coef, term = coef * (value - centre), factor = exp(term).
-
-    Largest effect (|term|) first; ``exp(term.sum())`` is the drive's relative hazard.
-    """
-    names = list(coef.index)
-    value = features.reindex(names).astype(float).to_numpy()
-    beta = coef.astype(float).to_numpy()
-    middle = centre.reindex(names).astype(float).to_numpy()
-    term = beta * (value - middle)
-    table = pd.DataFrame({"covariate": names, "value": value, "centre": middle, "coef": beta,
-                          "term": term, "factor": np.exp(term)})
+def contribution_table(factors: pd.Series, values: pd.Series) -> pd.DataFrame:
+    """CONTRIBUTION_COLUMNS from a drive's factors and covariate values; largest |log factor| first."""
+    names = list(factors.index)
+    factor = factors.astype(float).to_numpy()
+    term = np.log(factor)
+    table = pd.DataFrame({"covariate": names, "value": values.reindex(names).astype(float).to_numpy(),
+                          "term": term, "factor": factor})
     order = np.argsort(-np.abs(term), kind="stable")
     return table.iloc[order].reset_index(drop=True)
 
@@ -88,7 +79,7 @@ class DriveStory:
     fleet_drives: int  # drives in tonight's ranked list
     horizon_days: float | None
     p_fail: float | None
-    relative_hazard: float | None
+    rate_ratio: float | None  # product of the factors: rate over a same-cohort, same-age drive at x = 0
     contributions: pd.DataFrame  # CONTRIBUTION_COLUMNS, largest effect first; empty without a model
     group: dict | None  # its group's row of groups.group_risk, if it belongs to one
     group_members: pd.DataFrame  # rank, serial, host, slot, severity, p_fail of the group's members
@@ -135,7 +126,7 @@ def drive_story(store, serial: str, ruleset, *, config=None, model=_AUTO,
     contributions = pd.DataFrame(columns=CONTRIBUTION_COLUMNS)
     relative = None
     if model is not None and ranked is not None:
-        contributions, relative = _contributions(model, history.tail(1), notes)
+        contributions, relative = _contributions(model, serial, history, notes)
 
     group_name = newest.get("group")
     group, members, lost = None, pd.DataFrame(), pd.DataFrame()
@@ -163,7 +154,7 @@ def drive_story(store, serial: str, ruleset, *, config=None, model=_AUTO,
         fleet_drives=len(result.drives),
         horizon_days=result.horizon_days,
         p_fail=p_fail,
-        relative_hazard=relative,
+        rate_ratio=relative,
         contributions=contributions,
         group=group,
         group_members=members,
@@ -173,16 +164,21 @@ def drive_story(store, serial: str, ruleset, *, config=None, model=_AUTO,
     )
 
 
-def _contributions(model, latest: pd.DataFrame, notes: list[str]) -> tuple[pd.DataFrame, float | None]:
-    """hazard_terms of the drive's newest capture under the saved model's coefficients."""
-    from triage.survival.observations import covariate_features  # noqa: PLC0415  (survival layer)
-
+def _contributions(model, serial: str, history: pd.DataFrame,
+                   notes: list[str]) -> tuple[pd.DataFrame, float | None]:
+    """The saved model's rate factors for the drive's newest state (growth from its history)."""
     try:
-        coef = model.coefficients()["coef"]
-        centre = model.center_
+        details = model.predict_details(history.tail(1), history=history)
+        states = model.states(history.tail(1), history)
     except (AttributeError, KeyError, ValueError) as exc:
-        notes.append(f"the saved model does not expose its coefficients ({exc}): no contributions shown")
+        notes.append(f"the saved model does not give its rate factors ({exc}): no contributions shown")
         return pd.DataFrame(columns=CONTRIBUTION_COLUMNS), None
-    features = covariate_features(latest).iloc[0]
-    terms = hazard_terms(features, coef, centre)
-    return terms, float(np.exp(terms["term"].sum()))
+    details = details[details["serial"] == serial]
+    states = states[states["serial"] == serial]
+    columns = [c for c in details.columns if c.startswith("factor_")]
+    if details.empty or not columns:
+        return pd.DataFrame(columns=CONTRIBUTION_COLUMNS), None
+    factors = details.iloc[0][columns].rename(lambda c: c[len("factor_"):])
+    values = states.iloc[0] if len(states) else pd.Series(dtype=float)
+    table = contribution_table(factors, values)
+    return table, float(table["factor"].prod())

@@ -87,12 +87,13 @@ def fleet_state(store, ruleset, *, config=None, ranking: RankResult | None = Non
     if ranking is None:
         ranking = rank_store(store, ruleset, config=config, model=model)
     notes += [n for n in ranking.notes if n not in notes]
+    # the cohort numbers are those of 'triage cohorts' with its defaults (proactive pulls counted
+    # as failures), by the saved model's cohort keys
     by = tuple(model.by) if model is not None else ("model",)
-    count_proactive = bool(model.count_proactive) if model is not None else True
 
     cohorts, bands, reports = pd.DataFrame(), pd.DataFrame(), []
     try:
-        obs = load_observations(store, by, count_proactive)
+        obs = load_observations(store, by)
     except EmptyStore:
         obs = None
     if obs is not None:
