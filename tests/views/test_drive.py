@@ -34,6 +34,8 @@ def test_json_carries_the_contract_keys_and_every_capture(fleet):
     assert {"taken_at", "power_on_hours", "temperature_c", "reallocated_sectors", "pending_sectors"} <= set(first)
     assert [h["power_on_hours"] for h in record["history"]] == sorted(stored["power_on_hours"].tolist())
     assert record["model"] == HOSTILE  # JSON keeps the raw string; json escapes it
+    assert record["identity"]["user_capacity_bytes"] == stored["user_capacity_bytes"].iloc[-1]
+    assert record["identity"]["wwn"] == stored["wwn"].iloc[-1]
     assert any(f["rule_id"] == "media.pending-present" for f in record["flags"])
 
 

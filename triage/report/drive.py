@@ -144,7 +144,7 @@ def render_drive_table(story) -> None:
     ident = story.identity
     say = console.print
     say(f"[bold]{t(story.serial)}[/bold]  {t(ident.get('model') or '?')}  firmware {t(ident.get('firmware') or '?')}"
-        f"  {_capacity(ident.get('capacity_bytes'))}  {t(ident.get('bus') or '')}")
+        f"  {_capacity(ident.get('user_capacity_bytes'))}  {t(ident.get('bus') or '')}")
     say(f"WWN {t(ident.get('wwn') or '-')}  device {t(ident.get('device') or '?')}"
         f"  at {t(ident.get('host') or '?')} slot {t(ident.get('slot') or '?')}")
     say(f"last seen {_when(story.last_seen)}; newest capture in the store {_when(story.as_of)}")

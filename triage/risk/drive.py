@@ -33,7 +33,7 @@ HISTORY_FIELDS = (
     "nvme_unsafe_shutdowns", "data_written_bytes",
 )
 #: Who the drive is and where it sits (its newest capture's values).
-IDENTITY_FIELDS = ("model", "firmware", "bus", "capacity_bytes", "rotation_rpm", "wwn", "host", "device",
+IDENTITY_FIELDS = ("model", "firmware", "bus", "user_capacity_bytes", "rotation_rpm", "wwn", "host", "device",
                    "slot", "group")
 FLAG_FIELDS = ("rule_id", "severity", "category", "title", "evidence")
 CONTRIBUTION_COLUMNS = ("covariate", "value", "term", "factor")  # term = log(factor)
