@@ -172,7 +172,7 @@ def render_drive_table(story) -> None:
     series, flat = split_series(story.history)
     if series:
         first, last = story.history["taken_at"].iloc[0], story.history["taken_at"].iloc[-1]
-        width = max(12, min(SPARK_WIDTH, console.width - 52))  # the trend gives way on narrow terminals
+        width = max(10, min(SPARK_WIDTH, console.width - 64))  # the trend gives way on narrow terminals
         shown = min(len(story.history), width)
         grid = Table(title=f"History: {len(story.history)} captures {_when(first)[:10]} to {_when(last)[:10]}"
                            f" (last {shown} drawn)", title_justify="left")
