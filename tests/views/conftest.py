@@ -36,10 +36,17 @@ def fleet(tmp_path_factory):
     current = snapshots[snapshots["taken_at"] >= last_night]
     pick = current[(current["pending_sectors"] > 0) & (current["host"] != QUIET_HOST)]["serial"].iloc[0]
     snapshots.loc[snapshots["serial"] == pick, ["model", "host"]] = [HOSTILE, HOSTILE]
+    # a lost member: a current drive of another reporting group vanishes two nights before the end
+    others = current[(current["host"] == "ash-r1-n01") & (current["serial"] != pick)]
+    lost = others["serial"].iloc[0]
+    lost_group = others["group"].iloc[0]
+    gone = (snapshots["serial"] == lost) & (snapshots["taken_at"] >= last_night - np.timedelta64(1, "D"))
+    snapshots = snapshots[~gone].copy()
+    survivor = sorted(set(current.loc[current["group"] == lost_group, "serial"]) - {lost})[0]
     root = tmp_path_factory.mktemp("views-store")
     store = Store(root)
     store.append("snapshots", snapshots)
     store.append("removals", removals)
     model, _ = fit_store(store)
     return {"store": store, "root": root, "hostile_serial": pick, "model": model, "truth": truth,
-            "snapshots": snapshots}
+            "snapshots": snapshots, "lost_serial": lost, "degraded_group": lost_group, "survivor": survivor}

@@ -124,3 +124,13 @@ def test_sparkline_maps_min_to_the_lowest_glyph_and_max_to_the_highest():
     assert sparkline([5, 5, 5]) == SPARK_GLYPHS[0] * 3
     assert sparkline([1, None, 3]) == SPARK_GLYPHS[0] + " " + SPARK_GLYPHS[7]
     assert len(sparkline(range(100), width=12)) == 12
+
+
+def test_a_member_of_a_degraded_group_shows_the_lost_member_and_the_caution(fleet):
+    result = run("drive", fleet["survivor"], "--store", str(fleet["root"]), COLUMNS="200")
+    assert result.exit_code == Exit.OK, result.output
+    assert "DEGRADED" in result.stdout and fleet["lost_serial"] in result.stdout
+    assert "site's change procedure" in result.stdout  # advice that can cost data defers to the site
+    record = json.loads(run("drive", fleet["survivor"], "--format", "json", "--store", str(fleet["root"])).stdout)
+    assert record["group_state"]["degraded"] is True
+    assert [m["serial"] for m in record["group_lost"]] == [fleet["lost_serial"]]

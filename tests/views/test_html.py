@@ -68,7 +68,10 @@ def test_the_page_shows_the_top_drives_the_silent_host_and_the_cohorts(page, fle
     assert QUIET_HOST in text
     assert re.search(r"QH-HD8T-A</td>", text) and "Tallow 14T" in text
     assert "As of the newest capture" in text
-    assert "captures have stopped arriving" in text  # the simulated fleet ends in February 2026
+    assert "captures have stopped arriving" in text
+    degraded = text[text.index("Degraded redundancy groups"):text.index("Hosts not reporting")]
+    assert fleet["degraded_group"] in degraded and fleet["lost_serial"] in degraded
+    assert "change procedure" in degraded  # the simulated fleet ends in February 2026
 
 
 def test_the_page_renders_in_a_headless_browser(page, fleet, tmp_path):

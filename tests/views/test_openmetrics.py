@@ -111,3 +111,10 @@ def test_a_missing_folder_is_an_error_and_nothing_is_created(fleet, tmp_path):
     path = tmp_path / "no" / "fleet.om"
     result = run("export", "--openmetrics", str(path), "--store", str(fleet["root"]))
     assert result.exit_code == Exit.USAGE and not path.parent.exists()
+
+
+def test_the_degraded_group_is_marked(exposition, fleet):
+    _, families = exposition
+    degraded = {s.labels["group"]: s.value for s in families["triage_group_degraded"].samples}
+    assert degraded[fleet["degraded_group"]] == 1.0
+    assert set(degraded.values()) == {0.0, 1.0}  # a gauge per group, healthy ones at 0

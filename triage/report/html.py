@@ -29,7 +29,7 @@ table{border-collapse:collapse;margin:.4em 0}th,td{border:1px solid #ccc;padding
 th{background:#f2f2f2}td.n{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
 .caution{background:#fde8e8;border-left:4px solid #b00;padding:.4em .6em;margin:.3em 0}
 .stale{background:#fff4d6;border-left:4px solid #b70;padding:.4em .6em}
-.sev-replace-now{color:#b00;font-weight:bold}.sev-replace-soon{color:#960}.sev-check-path{color:#707}
+.sev{white-space:nowrap}.sev-replace-now{color:#b00;font-weight:bold}.sev-replace-soon{color:#960}.sev-check-path{color:#707}
 .muted{color:#666}img{max-width:100%;height:auto;display:block;margin:.5em 0}
 ul.ev{margin:0;padding-left:1.1em}
 """
@@ -77,7 +77,7 @@ def _ranked(state, top: int) -> str:
         rows.append([
             str(d.rank), f"{h(d.host)} / {h(d.slot)}<br><span class=muted>{h(d.group)}</span>",
             f"{h(d.model)}<br>{h(d.serial)}", _num(d.age_days / 365.25 if not pd.isna(d.age_days) else None, ".1f"),
-            _pct(d.p_fail), f'<span class="sev-{h(d.severity)}">{h(d.severity)}</span>',
+            _pct(d.p_fail), f'<span class="sev sev-{h(d.severity)}">{h(d.severity)}</span>',
             f'<ul class="ev">{evidence}</ul>', action, _num(d.score, ".3f"),
         ])
     more = len(flagged) - len(shown)
