@@ -65,6 +65,7 @@ def test_the_page_shows_the_top_drives_the_silent_host_and_the_cohorts(page, fle
     text = page.read_text(encoding="utf-8")
     for serial in _top_serials(fleet):
         assert serial in text
+    assert f'alt="counter history of {_top_serials(fleet, 1)[0]}"' in text
     assert QUIET_HOST in text
     assert re.search(r"QH-HD8T-A</td>", text) and "Tallow 14T" in text
     assert "As of the newest capture" in text

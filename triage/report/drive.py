@@ -240,23 +240,21 @@ def _risk_lines(story, say) -> None:
 
 # -- plot ---------------------------------------------------------------------------------------
 
-def plot_drive_history(story, path: Path) -> Path:
-    """One panel per reported counter (and temperature) against capture time, to .png or .svg."""
-    path = Path(path)
+def history_figure(serial: str, model, history: pd.DataFrame):
+    """One panel per counter that moved (and temperature) against capture time; a Figure."""
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
-
     from matplotlib.ticker import MaxNLocator
 
-    series, flat = split_series(story.history)
+    series, flat = split_series(history)
     series = series or [("power_on_hours", "power-on hours", "hours")]
     rows = len(series)
     fig, axes = plt.subplots(rows, 1, figsize=(8, 1.6 + 1.5 * rows), sharex=True, squeeze=False)
-    when = pd.to_datetime(story.history["taken_at"], utc=True).dt.tz_convert(None)
+    when = pd.to_datetime(history["taken_at"], utc=True).dt.tz_convert(None)
     for ax, (column, label, unit) in zip(axes[:, 0], series):
-        ax.plot(when, story.history[column].astype(float), marker=".", markersize=3, linewidth=1.2,
+        ax.plot(when, history[column].astype(float), marker=".", markersize=3, linewidth=1.2,
                 color="tab:red" if column != "temperature_c" else "tab:blue")
         ax.set_ylabel(unit)
         if column != "temperature_c":
@@ -265,9 +263,13 @@ def plot_drive_history(story, path: Path) -> Path:
         ax.grid(alpha=0.3)
     axes[-1, 0].set_xlabel("capture time (UTC)" + (f"; stayed at 0: {', '.join(flat)}" if flat else ""))
     fig.autofmt_xdate()
-    model = printable(story.identity.get("model")) or "?"
-    fig.suptitle(f"{printable(story.serial)} ({model}): counter history", parse_math=False)
+    fig.suptitle(f"{printable(serial)} ({printable(model) or '?'}): counter history", parse_math=False)
     fig.tight_layout()
-    fig.savefig(path)
-    plt.close(fig)
-    return path
+    return fig
+
+
+def plot_drive_history(story, path: Path) -> Path:
+    """``history_figure`` of the story's drive, to .png or .svg."""
+    from triage.report.pictures import save_figure
+
+    return save_figure(history_figure(story.serial, story.identity.get("model"), story.history), path)

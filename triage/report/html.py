@@ -14,6 +14,7 @@ from datetime import datetime, timezone
 
 import pandas as pd
 
+from triage.report.drive import history_figure
 from triage.report.pictures import figure_bytes, hazard_figure, survival_figure
 from triage.report.safe import for_html as h
 from triage.risk.fleet import STALE_HOURS, stale_age_hours
@@ -134,6 +135,10 @@ def _pictures(state) -> str:
         for report in state.survival[:HAZARD_COHORTS]:
             bands[report.cohort] = report.bands
         parts.append(_image(hazard_figure(bands), "failure rate by age band"))
+    drives = state.ranking.drives.set_index("serial") if len(state.ranking.drives) else None
+    for serial, history in state.histories.items():
+        model = drives.at[serial, "model"] if drives is not None and serial in drives.index else None
+        parts.append(_image(history_figure(serial, model, history), f"counter history of {serial}"))
     return "".join(parts) or "<p>No pictures: nothing stored yet.</p>"
 
 

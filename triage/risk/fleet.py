@@ -24,6 +24,8 @@ NOT_REPORTING_HOURS = STALE_HOURS
 NOT_REPORTING_LOOKBACK_DAYS = 14
 #: Cohorts drawn on the survival chart: the largest ones (a chart with more lines is unreadable).
 PICTURED_COHORTS = 6
+#: Flagged drives at the top of the list whose counter history the page draws.
+PICTURED_DRIVES = 3
 
 
 def stale_age_hours(as_of: datetime | None, now: datetime | None = None,
@@ -48,6 +50,7 @@ class FleetState:
     fleet_bands: pd.DataFrame  # survival.curves.hazard_by_age_band over every usable drive
     survival: list = field(default_factory=list)  # SurvivalReport of the PICTURED_COHORTS largest cohorts
     not_reporting: pd.DataFrame = field(default_factory=pd.DataFrame)  # host, drives, last_seen, silent_hours
+    histories: dict = field(default_factory=dict)  # serial -> its snapshot rows, oldest first (top flagged drives)
     notes: list[str] = field(default_factory=list)
 
 
@@ -109,5 +112,13 @@ def fleet_state(store, ruleset, *, config=None, ranking: RankResult | None = Non
         since = ranking.as_of - timedelta(days=NOT_REPORTING_LOOKBACK_DAYS)
         recent = store.read("snapshots", columns=["serial", "host", "taken_at"], since=since)
         quiet = not_reporting_hosts(recent, store.read("removals"), ranking.as_of)
+    histories = {}
+    if with_survival and len(ranking.drives):
+        flagged = ranking.drives[ranking.drives["rules"].map(len) > 0]
+        top = list(flagged["serial"].head(PICTURED_DRIVES))
+        if top:
+            rows = store.read("snapshots", serials=top).sort_values("taken_at", kind="stable")
+            histories = {serial: rows[rows["serial"] == serial].reset_index(drop=True) for serial in top}
     return FleetState(ranking=ranking, as_of=ranking.as_of, cohort_by=by, cohorts=cohorts,
-                      fleet_bands=bands, survival=reports, not_reporting=quiet, notes=notes)
+                      fleet_bands=bands, survival=reports, not_reporting=quiet, notes=notes,
+                      histories=histories)
