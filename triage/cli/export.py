@@ -41,7 +41,7 @@ def write_views(store, ruleset, config, *, openmetrics: Optional[Path] = None, h
         fail(f"cannot write {exc.filename or ''}: {exc.strerror or exc}", Exit.FAILURE)
 
 
-@app.command(epilog="Example: triage export --openmetrics /var/lib/node-metrics/triage.prom --store /srv/triage/store")
+@app.command(epilog="Example: triage export --openmetrics /var/lib/node-metrics/triage.om --store /srv/triage/store")
 def export(
     openmetrics: Optional[Path] = OpenMetricsOption,
     rules: Optional[list[Path]] = RulesOption,
