@@ -12,7 +12,7 @@ from triage.survival.run import fit_store
 
 #: A model name a hostile or broken firmware could report: quote, backslash, line feed, markup,
 #: a terminal escape (ESC [31m) and a right-to-left override.
-HOSTILE = 'Q"H\\x\n<script>alert(1)</script>\x1b[31m[b]\u202e'
+HOSTILE = 'Q"H\\x$^{$\n<script>alert(1)</script>\x1b[31m[b]\u202e'
 #: Host that stops reporting three nights before the end.
 QUIET_HOST = "birch-r2-n01"
 

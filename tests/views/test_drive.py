@@ -104,7 +104,7 @@ def test_a_failed_drive_shows_its_removal_and_no_probability(fleet):
 
 
 def test_plot_is_written_and_a_missing_folder_is_an_error(fleet, tmp_path):
-    serial = fleet["hostile_serial"]
+    serial = fleet["hostile_serial"]  # its model name holds "$^{$": drawn as text, not parsed as math
     target = tmp_path / "history.png"
     result = run("drive", serial, "--plot", str(target), "--store", str(fleet["root"]))
     assert result.exit_code == Exit.OK, result.output

@@ -59,3 +59,12 @@ def test_the_bathtub_leaves_out_bands_too_thin_to_read_and_says_so():
     fig = hazard_figure({"fleet": bands})
     assert "left out" in fig.axes[0].get_xlabel()
     assert len(fig.axes[0].patches) == 1  # one bar: the thin band is not drawn
+
+
+def test_a_cohort_named_like_mathtext_is_drawn_as_text(fleet, tmp_path):
+    from tests.views.conftest import HOSTILE
+
+    target = tmp_path / "one.png"
+    result = runner.invoke(app, ["survival", HOSTILE, "--plot", str(target), "--store", str(fleet["root"])])
+    assert result.exit_code == Exit.OK, result.output
+    assert target.read_bytes()[:8] == PNG

@@ -17,7 +17,7 @@ from rich.table import Table
 
 from triage.report.console import stdout_console
 from triage.report.safe import for_terminal as t
-from triage.report.safe import printable
+from triage.report.pictures import chart_text
 from triage.risk.fleet import STALE_HOURS, stale_age_hours
 
 #: Eight heights, lowest first (Unicode "Block Elements" U+2581..U+2588).
@@ -263,7 +263,7 @@ def history_figure(serial: str, model, history: pd.DataFrame):
         ax.grid(alpha=0.3)
     axes[-1, 0].set_xlabel("capture time (UTC)" + (f"; stayed at 0: {', '.join(flat)}" if flat else ""))
     fig.autofmt_xdate()
-    fig.suptitle(f"{printable(serial)} ({printable(model) or '?'}): counter history", parse_math=False)
+    fig.suptitle(f"{chart_text(serial)} ({chart_text(model) or '?'}): counter history")
     fig.tight_layout()
     return fig
 

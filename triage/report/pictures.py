@@ -4,8 +4,8 @@ beyond converting hours to years for the axes.
 
 Each function returns a matplotlib Figure; ``save_figure`` writes it to .png or .svg and
 ``figure_bytes`` gives the PNG bytes for an HTML page. Legends go outside the plotting area so
-they never cover a curve; titles and labels pass ``parse_math=False`` so a cohort named with a
-``$`` stays text.
+they never cover a curve; every string from the data goes through ``chart_text`` so a cohort
+named with a ``$`` stays text.
 """
 
 from __future__ import annotations
@@ -23,6 +23,12 @@ DPI = 100
 #: A band with less exposure than this is not drawn: its limits would span the whole chart
 #: (common practice, no source).
 MIN_DRIVE_YEARS = 1.0
+
+
+def chart_text(value) -> str:
+    """A drive- or cohort-derived string for a chart: printable, and ``$`` escaped so matplotlib
+    never reads it as mathtext (an unbalanced ``$^{$`` would stop the drawing with an error)."""
+    return printable(value).replace("$", r"\$")
 
 
 def _pyplot():
@@ -56,7 +62,7 @@ def survival_figure(reports):
     for i, report in enumerate(reports):
         curve = report.curves.table
         colour = colours[i % len(colours)]
-        label = (f"{printable(report.cohort)}: {report.drives} drives, {report.failures} failures"
+        label = (f"{chart_text(report.cohort)}: {report.drives} drives, {report.failures} failures"
                  f" (from {report.curves.youngest_entry_hours / HOURS_PER_YEAR:.1f} y)")
         if not len(curve) or report.failures == 0:
             ax.plot([], [], color=colour, label=label + ", no failure: no curve")
@@ -104,7 +110,7 @@ def hazard_figure(bands_by_label: dict):
         high = np.clip(bands["hazard_high"].to_numpy(dtype=float)[seen] - hazard, 0, None)
         failures = int(bands["failures"].sum())
         colour = colours[i % len(colours)]
-        ax.bar(x, hazard, width=width * 0.9, color=colour, label=f"{printable(label)} ({failures} failures)")
+        ax.bar(x, hazard, width=width * 0.9, color=colour, label=f"{chart_text(label)} ({failures} failures)")
         ax.errorbar(x, hazard, yerr=[low, high], fmt="none", ecolor=colour, elinewidth=1, capsize=3, alpha=0.8)
     tops = [b["hazard"].max() for b in bands_by_label.values() if (b["drive_days"] > 0).any()]
     top = np.nanmax(tops) if tops and np.isfinite(np.nanmax(tops)) else 0.0

@@ -14,6 +14,7 @@ from rich.markup import escape
 from rich.table import Table
 
 from triage.report.console import stdout_console
+from triage.report.pictures import chart_text
 
 HOURS_PER_YEAR = 8766.0  # for showing ages in years only
 TABLE_CURVE_ROWS = 25
@@ -280,7 +281,8 @@ def plot_survival(report, path: Path) -> Path:
 
     curve = report.curves.table
     fig, ax = plt.subplots(figsize=(7, 4.2))
-    title = f"{report.cohort}: {report.drives} drives, {report.failures} failed, {report.replacements} replaced"
+    title = (f"{chart_text(report.cohort)}: {report.drives} drives, {report.failures} failed, "
+             f"{report.replacements} replaced")
     if not len(curve) or int(curve["failures"].sum()) == 0:
         ax.set_axis_off()
         ax.text(0.5, 0.5, f"no {report.events} in {report.drive_days / 365:,.1f} drive-years:\n"
