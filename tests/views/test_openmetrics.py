@@ -38,7 +38,8 @@ def test_the_file_parses_ends_in_eof_and_has_every_family_as_a_gauge(exposition)
     text, families = exposition
     assert text.endswith("# EOF\n")
     for name in ("triage_drive_failure_probability", "triage_drive_flagged", "triage_cohort_afr_ratio",
-                 "triage_cohort_afr_ratio_low", "triage_cohort_afr_ratio_high", "triage_group_loss_probability",
+                 "triage_cohort_afr_ratio_low", "triage_cohort_afr_ratio_high", "triage_cohort_arr_ratio",
+                 "triage_cohort_arr_ratio_low", "triage_cohort_arr_ratio_high", "triage_group_loss_probability",
                  "triage_newest_capture_timestamp_seconds"):
         assert families[name].type == "gauge", name
 

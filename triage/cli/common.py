@@ -126,5 +126,6 @@ def check_output_file(path: Path | None, suffixes: tuple[str, ...], option: str)
         return
     if suffixes and path.suffix.lower() not in suffixes:
         fail(f"{path}: {option} must name a {' or '.join(suffixes)} file", Exit.USAGE)
-    if not path.parent.is_dir():
-        fail(f"{path.parent}: no such folder for {option}", Exit.USAGE)
+    folder = path.absolute().parent
+    if not folder.is_dir():
+        fail(f"{path}: {option} folder {folder} does not exist (create it first)", Exit.USAGE)

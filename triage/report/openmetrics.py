@@ -92,12 +92,16 @@ def openmetrics_text(state) -> str:
 
     cohorts = state.cohorts
     rows = list(cohorts.itertuples(index=False)) if len(cohorts) else []
-    # cohort_table's afr is in percent per year; failures per drive-year is afr / 100
-    for suffix, column, words in (("", "afr", "Failures per drive-year in the cohort (annualized failure rate)."),
-                                  ("_low", "afr_low", "Lower 95 % limit of triage_cohort_afr_ratio (exact Poisson)."),
-                                  ("_high", "afr_high", "Upper 95 % limit of triage_cohort_afr_ratio (exact Poisson).")):
-        out.family(f"triage_cohort_afr_ratio{suffix}", words,
-                   (([("cohort", r.cohort)], getattr(r, column) / 100.0) for r in rows))
+    # cohort_table's afr / arr are in percent per year; per drive-year is that / 100
+    for rate, words in (("afr", "Failures per drive-year in the cohort (annualized failure rate)"),
+                        ("arr", "Replacements (failures and proactive pulls) per drive-year in the cohort")):
+        if rows and not hasattr(rows[0], rate):
+            continue
+        for suffix, column, what in (("", rate, f"{words}."),
+                                     ("_low", f"{rate}_low", f"Lower 95 % limit of triage_cohort_{rate}_ratio (exact Poisson)."),
+                                     ("_high", f"{rate}_high", f"Upper 95 % limit of triage_cohort_{rate}_ratio (exact Poisson).")):
+            out.family(f"triage_cohort_{rate}_ratio{suffix}", what,
+                       (([("cohort", r.cohort)], getattr(r, column) / 100.0) for r in rows))
 
     groups = ranking.groups
     group_rows = list(groups.itertuples(index=False)) if len(groups) else []

@@ -62,10 +62,12 @@ def survival_figure(reports):
     for i, report in enumerate(reports):
         curve = report.curves.table
         colour = colours[i % len(colours)]
-        label = (f"{chart_text(report.cohort)}: {report.drives} drives, {report.failures} failures"
+        events = getattr(report, "events", "failures")
+        count = report.replacements if events == "replacements" else report.failures
+        label = (f"{chart_text(report.cohort)}: {report.drives} drives, {count} {events}"
                  f" (from {report.curves.youngest_entry_hours / HOURS_PER_YEAR:.1f} y)")
-        if not len(curve) or report.failures == 0:
-            ax.plot([], [], color=colour, label=label + ", no failure: no curve")
+        if not len(curve) or count == 0:
+            ax.plot([], [], color=colour, label=label + ": no curve")
             continue
         years = curve["age_hours"] / HOURS_PER_YEAR
         ax.fill_between(years, curve["survival_low"], curve["survival_high"], step="post", alpha=0.15,
@@ -73,7 +75,7 @@ def survival_figure(reports):
         ax.step(years, curve["survival"], where="post", color=colour, label=label)
         drawn += 1
     if not drawn:
-        ax.text(0.5, 0.5, "no failures in these cohorts yet: no survival curve to draw",
+        ax.text(0.5, 0.5, "no events in these cohorts yet: no survival curve to draw",
                 transform=ax.transAxes, ha="center", va="center")
     ax.set_xlabel("age (power-on years)")
     ax.set_ylabel("fraction still working (95 % band)")

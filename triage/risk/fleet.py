@@ -90,8 +90,8 @@ def fleet_state(store, ruleset, *, config=None, ranking: RankResult | None = Non
     if ranking is None:
         ranking = rank_store(store, ruleset, config=config, model=model)
     notes += [n for n in ranking.notes if n not in notes]
-    # the cohort numbers are those of 'triage cohorts' with its defaults (proactive pulls counted
-    # as failures), by the saved model's cohort keys
+    # the cohort numbers are those of 'triage cohorts' with its defaults, by the saved model's
+    # cohort keys
     by = tuple(model.by) if model is not None else ("model",)
 
     cohorts, bands, reports = pd.DataFrame(), pd.DataFrame(), []

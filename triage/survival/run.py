@@ -71,7 +71,7 @@ def survival_of_store(store, cohort: str, by: Sequence[str] = ("model",), count_
 
 
 def survival_reports_of_store(store, cohorts: Sequence[str], by: Sequence[str] = ("model",),
-                              count_proactive: bool = True, mttf_hours: float | None = None,
+                              count_proactive: bool = False, mttf_hours: float | None = None,
                               progress: Callable[[int, int], None] | None = None
                               ) -> tuple[list[SurvivalReport], Observations]:
     """(one survival report per cohort, in the order given; observations), read once."""
