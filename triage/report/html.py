@@ -120,10 +120,12 @@ def _cohorts(state) -> str:
     if cohorts is None or cohorts.empty:
         return "<p>No cohort yet (nothing stored).</p>"
     rows = [[h(c.cohort), str(c.drives), _num(c.drive_days / 365.0, ",.1f"), str(c.failures),
-             _num(c.afr, ".2f"), f"{_num(c.afr_low, '.2f')} - {_num(c.afr_high, '.2f')}", h(c.phase),
-             "small sample" if c.small_sample else ""] for c in cohorts.itertuples(index=False)]
+             _num(c.afr, ".2f"), f"{_num(c.afr_low, '.2f')} - {_num(c.afr_high, '.2f')}",
+             str(c.replacements), _num(c.arr, ".2f"), h(c.phase), "small sample" if c.small_sample else ""]
+            for c in cohorts.itertuples(index=False)]
     return _table([f"cohort ({', '.join(state.cohort_by)})", "drives", "drive-years", "failures", "AFR %/yr",
-                   "95 % range", "life phase (Weibull)", "note"], rows, numeric={1, 2, 3, 4, 5})
+                   "95 % range", "replacements", "ARR %/yr", "life phase (Weibull)", "note"], rows,
+                  numeric={1, 2, 3, 4, 5, 6, 7})
 
 
 def _pictures(state) -> str:
