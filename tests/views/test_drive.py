@@ -42,7 +42,7 @@ def test_json_carries_the_contract_keys_and_every_capture(fleet):
 def test_p_fail_is_the_ranked_lists(fleet):
     serial = fleet["hostile_serial"]
     record = json.loads(run("drive", serial, "--format", "json", "--store", str(fleet["root"])).stdout)
-    ranked = json.loads(run("rank", "--top", "10000", "--format", "json", "--store", str(fleet["root"])).stdout)
+    ranked = json.loads(run("rank", "--top", "10000", "--format", "json", "--store", str(fleet["root"])).stdout)["drives"]
     assert record["p_fail"] == pytest.approx(next(r["p_fail"] for r in ranked if r["serial"] == serial))
 
 
@@ -90,7 +90,7 @@ def test_terminal_story_shows_hostile_strings_as_text_and_never_emits_escape_byt
     assert "\\x1b[31m[b]" in out  # the escape shown as text, the markup not eaten by rich
     assert "<script>" in out  # harmless on a terminal, shown as it is
     assert "P(fail within 30 d)" in out and "pending sectors" in out
-    assert "captures have stopped arriving" in out  # the simulated fleet ends in February 2026
+    assert "captures may have stopped arriving" in out  # the simulated fleet ends in February 2026
 
 
 def test_a_failed_drive_shows_its_removal_and_no_probability(fleet):
@@ -116,7 +116,22 @@ def test_plot_is_written_and_a_missing_folder_is_an_error(fleet, tmp_path):
 
 def test_a_store_that_does_not_exist_is_an_error_not_an_empty_fleet(tmp_path):
     result = run("drive", "QHS1", "--store", str(tmp_path / "typo"))
-    assert result.exit_code == Exit.USAGE and "no such store" in result.stderr
+    assert result.exit_code == Exit.FAILURE and "typo" in result.stderr and result.stdout == ""
+
+
+def test_csv_is_the_history_one_rfc4180_row_per_capture(fleet):
+    import csv
+    import io
+
+    serial = fleet["hostile_serial"]
+    result = run("drive", serial, "--format", "csv", "--store", str(fleet["root"]))
+    assert result.exit_code == Exit.OK, result.output
+    text = result.stdout_bytes.decode()
+    assert text.endswith("\r\n")  # RFC 4180 section 2: CRLF line breaks
+    rows = list(csv.DictReader(io.StringIO(text, newline="")))
+    stored = fleet["snapshots"][fleet["snapshots"]["serial"] == serial]
+    assert len(rows) == len(stored) and {r["serial"] for r in rows} == {serial}
+    assert [int(r["power_on_hours"]) for r in rows] == sorted(stored["power_on_hours"].tolist())
 
 
 def test_sparkline_maps_min_to_the_lowest_glyph_and_max_to_the_highest():

@@ -46,7 +46,7 @@ def test_the_file_parses_ends_in_eof_and_has_every_family_as_a_gauge(exposition)
 
 def test_failure_probabilities_are_the_ranked_lists(exposition, fleet):
     _, families = exposition
-    ranked = json.loads(run("rank", "--top", "10000", "--format", "json", "--store", str(fleet["root"])).stdout)
+    ranked = json.loads(run("rank", "--top", "10000", "--format", "json", "--store", str(fleet["root"])).stdout)["drives"]
     by_serial = {s.labels["serial"]: s for s in families["triage_drive_failure_probability"].samples}
     assert len(by_serial) == len(ranked)
     for row in ranked:
@@ -93,10 +93,11 @@ def test_a_flagged_drive_has_one_sample_per_severity_and_category(exposition):
     assert samples and len(keys) == len(set(keys)) and all(s.value == 1.0 for s in samples)
 
 
-def test_the_silent_host_and_the_newest_capture_time_are_there(exposition, fleet):
+def test_the_host_not_reporting_and_the_newest_capture_time_are_there(exposition, fleet):
     _, families = exposition
-    silent = {s.labels["host"]: s.value for s in families["triage_host_silent_seconds"].samples}
-    assert set(silent) == {QUIET_HOST} and silent[QUIET_HOST] > 36 * 3600
+    silent = {(s.labels["scope"], s.labels["name"]): s.value for s in families["triage_not_reporting_seconds"].samples}
+    assert silent[("host", QUIET_HOST)] > 36 * 3600  # silent for three nights
+    assert any(scope == "drive" and name.startswith(fleet["lost_serial"]) for scope, name in silent)
     newest = families["triage_newest_capture_timestamp_seconds"].samples[0].value
     assert newest == pytest.approx(fleet["snapshots"]["taken_at"].max().timestamp())
 

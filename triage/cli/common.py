@@ -109,17 +109,6 @@ def fail(message: str, code: Exit = Exit.FAILURE) -> None:
     raise typer.Exit(int(code))
 
 
-def existing_store(option: Path | None) -> "Store":
-    """``open_store``, but a folder that does not exist is an error (only ``ingest`` creates a
-    store), so a typo never reads as an empty, all-clear fleet."""
-    from triage.config import resolve_store
-
-    root = resolve_store(option)
-    if not root.is_dir():
-        fail(f"{root}: no such store (check --store / $TRIAGE_STORE; 'triage ingest' creates one)", Exit.USAGE)
-    return open_store(option)
-
-
 def check_output_file(path: Path | None, suffixes: tuple[str, ...], option: str) -> None:
     """An output file's folder must exist (never created silently) and its suffix be one we write."""
     if path is None:

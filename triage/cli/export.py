@@ -9,12 +9,12 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import StoreOption, app, check_output_file, existing_store, fail
+from triage.cli.common import StoreOption, app, check_output_file, fail, open_store
 from triage.cli.risk import GroupConfigOption, NoDefaultRulesOption, RulesOption, _risk_inputs
 from triage.exitcodes import Exit
 
-OpenMetricsOption = typer.Option(None, "--openmetrics", help="OpenMetrics text file to write (atomic replace).")
-HtmlOption = typer.Option(None, "--html", help="Self-contained HTML page to write (atomic replace).")
+OpenMetricsOption = typer.Option(None, "--openmetrics", metavar="FILE", help="OpenMetrics text file to write (atomic replace).")
+HtmlOption = typer.Option(None, "--html", metavar="FILE", help="Self-contained HTML page to write (atomic replace).")
 
 
 def write_views(store, ruleset, config, *, openmetrics: Optional[Path] = None, html: Optional[Path] = None,
@@ -54,7 +54,7 @@ def export(
     if openmetrics is None:
         fail("say what to export: --openmetrics FILE", Exit.USAGE)
     check_output_file(openmetrics, (), "--openmetrics")
-    target = existing_store(store)
+    target = open_store(store)
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
     write_views(target, ruleset, config, openmetrics=openmetrics)
 
@@ -62,7 +62,7 @@ def export(
 @app.command(epilog="Example: triage report --html /srv/www/triage/tonight.html --top 30")
 def report(
     html: Optional[Path] = HtmlOption,
-    top: int = typer.Option(25, "--top", min=1, help="Drives in the page's ranked list."),
+    top: int = typer.Option(25, "--top", min=1, metavar="N", help="Drives in the page's ranked list."),
     rules: Optional[list[Path]] = RulesOption,
     no_default_rules: bool = NoDefaultRulesOption,
     group_config: Optional[Path] = GroupConfigOption,
@@ -73,6 +73,6 @@ def report(
     if html is None:
         fail("say where to write the page: --html FILE", Exit.USAGE)
     check_output_file(html, (".html", ".htm"), "--html")
-    target = existing_store(store)
+    target = open_store(store)
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
     write_views(target, ruleset, config, html=html, top=top)

@@ -12,13 +12,14 @@ from datetime import datetime
 from pathlib import Path
 from typing import TextIO
 
+import numpy as np
 import pandas as pd
 from rich.table import Table
 
 from triage.report.console import stdout_console
 from triage.report.safe import for_terminal as t
 from triage.report.pictures import chart_text
-from triage.risk.fleet import STALE_HOURS, stale_age_hours
+from triage.risk.rank import stale_warning
 
 #: Eight heights, lowest first (Unicode "Block Elements" U+2581..U+2588).
 SPARK_GLYPHS = "\u2581\u2582\u2583\u2584\u2585\u2586\u2587\u2588"
@@ -43,6 +44,10 @@ HISTORY_SHOWN = (
 def _plain(value):
     if value is None:
         return None
+    if isinstance(value, (list, tuple, set, frozenset, np.ndarray, pd.Series)):
+        return [_plain(v) for v in list(value)]
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
     if isinstance(value, (pd.Timestamp, datetime)):
         return value.isoformat().replace("+00:00", "Z")
     if hasattr(value, "item"):
@@ -129,6 +134,17 @@ def render_drive_json(story, out: TextIO | None = None) -> None:
     out.write("\n")
 
 
+def render_drive_csv(story, out: TextIO | None = None) -> None:
+    """The history, one RFC 4180 row per capture (CRLF line ends), serial first."""
+    import csv
+
+    out = out or sys.stdout
+    writer = csv.writer(out, lineterminator="\r\n")
+    writer.writerow(["serial", *story.history.columns])
+    for row in story.history.to_dict("records"):
+        writer.writerow([story.serial, *("" if _plain(v) is None else _plain(v) for v in row.values())])
+
+
 # -- terminal -----------------------------------------------------------------------------------
 
 def _when(moment) -> str:
@@ -148,10 +164,9 @@ def render_drive_table(story) -> None:
     say(f"WWN {t(ident.get('wwn') or '-')}  device {t(ident.get('device') or '?')}"
         f"  at {t(ident.get('host') or '?')} slot {t(ident.get('slot') or '?')}")
     say(f"last seen {_when(story.last_seen)}; newest capture in the store {_when(story.as_of)}")
-    age = stale_age_hours(story.as_of)
-    if age is not None:
-        say(f"[bold yellow]warning:[/] the newest capture is {age:,.0f} hours old (over {STALE_HOURS:g} h): "
-            "captures have stopped arriving")
+    warning = stale_warning(story.as_of)
+    if warning:
+        say(f"[bold yellow]warning:[/] {t(warning)}")
     if story.removal is not None:
         say(f"[bold]removed[/bold] {_when(story.removal.get('removed_at'))} "
             f"({t(story.removal.get('reason'))}{': ' + t(story.removal.get('note')) if story.removal.get('note') else ''})")

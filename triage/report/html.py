@@ -17,7 +17,7 @@ import pandas as pd
 from triage.report.drive import history_figure
 from triage.report.pictures import figure_bytes, hazard_figure, survival_figure
 from triage.report.safe import for_html as h
-from triage.risk.fleet import STALE_HOURS, stale_age_hours
+from triage.risk.rank import stale_warning
 from triage.risk.score import DEGRADED_CAUTION
 
 #: Cohorts next to the whole fleet on the hazard-by-age chart.
@@ -109,10 +109,10 @@ def _degraded(state) -> str:
 def _not_reporting(state) -> str:
     quiet = state.not_reporting
     if quiet is None or quiet.empty:
-        return "<p>Every host that reported in the last two weeks reported in the newest night.</p>"
-    rows = [[h(q.host), str(q.drives), h(_when(q.last_seen)), _num(q.silent_hours, ",.0f")]
+        return "<p>Every drive seen in the last nights reported in the newest one.</p>"
+    rows = [[h(q.scope), h(q.name), "" if pd.isna(q.hosts) else str(q.hosts), str(q.drives), h(_when(q.last_seen))]
             for q in quiet.itertuples(index=False)]
-    return _table(["host", "drives", "last capture", "silent (hours)"], rows, numeric={1, 3})
+    return _table(["scope", "name", "hosts", "drives", "last capture"], rows, numeric={2, 3})
 
 
 def _cohorts(state) -> str:
@@ -148,17 +148,17 @@ def html_page(state, top: int = 25, now: datetime | None = None) -> str:
     """The whole page as a string (UTF-8)."""
     now = now or datetime.now(timezone.utc)
     stale = ""
-    age_hours = stale_age_hours(state.as_of, now)
     if state.as_of is None:
         stale = '<p class="stale">The store holds no captures: nothing below is news.</p>'
-    elif age_hours is not None:
-        stale = (f'<p class="stale">The newest capture is {age_hours:,.0f} hours old (over {STALE_HOURS:g} h): '
-                 "captures have stopped arriving; this page is not tonight's fleet.</p>")
+    else:
+        warning = stale_warning(state.as_of, now=now)
+        if warning:
+            stale = f'<p class="stale">Warning: {h(warning)}; this page is not tonight\'s fleet.</p>'
     notes = "".join(f"<li>{h(n)}</li>" for n in state.notes)
     sections = [
         ("Drives to look at, most urgent first", _ranked(state, top)),
         ("Degraded redundancy groups", _degraded(state)),
-        ("Hosts not reporting", _not_reporting(state)),
+        ("Not reporting", _not_reporting(state)),
         ("Failure rate by cohort", _cohorts(state)),
         ("Pictures", _pictures(state)),
     ]

@@ -112,10 +112,13 @@ def openmetrics_text(state) -> str:
                (([("group", g.group)], 1.0 if g.degraded else 0.0) for g in group_rows))
 
     quiet = state.not_reporting
-    out.family("triage_host_silent_seconds",
-               "Seconds since a host that stopped reporting sent its last capture (only such hosts).",
-               (([("host", h.host)], h.silent_hours * 3600.0) for h in
-                (quiet.itertuples(index=False) if len(quiet) else [])), unit="seconds")
+    as_of = None if state.as_of is None else pd.Timestamp(state.as_of)
+    out.family("triage_not_reporting_seconds",
+               "Seconds between the newest capture and the last one of a site, host or drive that stopped "
+               "reporting (only those).",
+               (([("scope", q.scope), ("name", q.name)], (as_of - pd.Timestamp(q.last_seen)).total_seconds())
+                for q in (quiet.itertuples(index=False) if quiet is not None and len(quiet) and as_of is not None
+                          else [])), unit="seconds")
     out.family("triage_model_available", "1 when a saved fleet risk model gave the probabilities, else 0.",
                [([], 1.0 if ranking.model_used else 0.0)])
     newest = [] if state.as_of is None else [([], pd.Timestamp(state.as_of).timestamp())]
