@@ -57,6 +57,14 @@ def test_read_since_returns_only_later_rows(tmp_path):
     assert later.to_dict("records") == [{"serial": "QHA0001", "power_on_hours": 124}]
 
 
+def test_read_serials_returns_only_those_drives(tmp_path):
+    store = Store(tmp_path)
+    store.append("snapshots", NIGHTS)
+    one = store.read("snapshots", columns=["serial", "power_on_hours"], serials=["QHA0001"])
+    assert sorted(one["power_on_hours"]) == [100, 124] and set(one["serial"]) == {"QHA0001"}
+    assert store.read("snapshots", serials=["QHA9999"]).empty
+
+
 def test_reading_an_empty_store_gives_the_schema_columns(tmp_path):
     empty = Store(tmp_path).read("snapshots")
     assert list(empty.columns) == SNAPSHOTS.names and empty.empty

@@ -10,7 +10,7 @@ from __future__ import annotations
 import sys
 
 from triage.cli.common import app
-from triage.cli import ingest, predict, risk, rules, survival  # noqa: F401  (each registers its commands)
+from triage.cli import drive, export, ingest, predict, risk, rules, survival  # noqa: F401  (each registers its commands)
 
 
 def main() -> None:

@@ -107,3 +107,14 @@ def fail(message: str, code: Exit = Exit.FAILURE) -> None:
     """One clear line on stderr, then exit with ``code``."""
     typer.echo(f"triage: {message}", err=True)
     raise typer.Exit(int(code))
+
+
+def check_output_file(path: Path | None, suffixes: tuple[str, ...], option: str) -> None:
+    """An output file's folder must exist (never created silently) and its suffix be one we write."""
+    if path is None:
+        return
+    if suffixes and path.suffix.lower() not in suffixes:
+        fail(f"{path}: {option} must name a {' or '.join(suffixes)} file", Exit.USAGE)
+    folder = path.absolute().parent
+    if not folder.is_dir():
+        fail(f"{path}: {option} folder {folder} does not exist (create it first)", Exit.USAGE)

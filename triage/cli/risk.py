@@ -156,6 +156,9 @@ def nightly(
     refit_days: float = typer.Option(7.0, "--refit-days", min=0.0, metavar="DAYS", help="Refit the model when the saved one is this old."),
     min_severity: Optional[Tier] = MinSeverityOption,
     stale_hours: float = StaleOption,
+    openmetrics: Optional[Path] = typer.Option(None, "--openmetrics", metavar="FILE",
+                                               help="Also write the OpenMetrics file (as 'triage export')."),
+    html: Optional[Path] = typer.Option(None, "--html", metavar="FILE", help="Also write the HTML page (as 'triage report')."),
     rules: Optional[list[Path]] = RulesOption,
     no_default_rules: bool = NoDefaultRulesOption,
     group_config: Optional[Path] = GroupConfigOption,
@@ -164,9 +167,13 @@ def nightly(
     """Ingest new captures, refit when due, rank, write tickets. Exit (worst outcome): 1 failure,
     5 another run holds the lock, 8 something is not reporting or stale, 3 some input quarantined,
     4 new flags, 0 nothing new; --summary FILE lists every outcome."""
+    from triage.cli.common import check_output_file
+    from triage.cli.export import write_views
     from triage.risk.nightly import run_nightly
     from triage.store.dataset import StoreLocked
 
+    check_output_file(openmetrics, (), "--openmetrics")
+    check_output_file(html, (".html", ".htm"), "--html")
     target = open_store(store)
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
     try:
@@ -181,5 +188,11 @@ def nightly(
         fail(str(exc), Exit.USAGE)
     except Exception as exc:  # cron must see one clear line and FAILURE, not a traceback
         fail(f"nightly run failed: {type(exc).__name__}: {exc}", Exit.FAILURE)
+    try:
+        write_views(target, ruleset, config, openmetrics=openmetrics, html=html, ranking=report.result)
+    except typer.Exit:
+        raise
+    except Exception as exc:  # the tickets are written; the extra views failing is still a failed run
+        fail(f"nightly views failed: {type(exc).__name__}: {exc}", Exit.FAILURE)
     typer.echo(report.summary(), err=True)
     raise typer.Exit(int(report.exit))

@@ -113,36 +113,45 @@ def cohorts(
     render_cohorts(table, fmt)
 
 
-@app.command(epilog="Example: triage survival 'QH-HD8T-A' --plot qh-hd8t-a.png --mttf 2500000")
+@app.command(epilog="Example: triage survival 'QH-HD8T-A' 'Tallow 14T' --plot survival.png --hazard-plot bathtub.png")
 def survival(
-    cohort: str = typer.Argument(..., metavar="COHORT", help="Cohort label as 'triage cohorts' prints it (same --by)."),
+    cohorts: list[str] = typer.Argument(..., metavar="COHORT...",
+                                        help="Cohort label(s) as 'triage cohorts' prints them (same --by)."),
     by: str = ByOption,
-    fmt: OutputFormat = format_option("CSV: the survival curve; JSON: everything"),
-    plot: Optional[Path] = typer.Option(None, "--plot", metavar="FILE", help="Also draw Kaplan-Meier with band and "
-                                                                           "Weibull fit (.png or .svg, in an existing folder)."),
+    fmt: OutputFormat = format_option("CSV: the survival curve; JSON: everything; a list for several cohorts"),
+    plot: Optional[Path] = typer.Option(None, "--plot", metavar="FILE", help="Also draw survival (.png or .svg, in an "
+                                        "existing folder): one cohort with its Weibull fit, several on one chart."),
+    hazard_plot: Optional[Path] = typer.Option(None, "--hazard-plot", metavar="FILE",
+                                               help="Also draw hazard by age band, the bathtub (.png or .svg)."),
     mttf: Optional[float] = MttfOption,
     events: Events = EventsOption,
     stale_hours: float = StaleOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
-    """Survival and cumulative hazard by age (delayed entry), hazard by age band, Weibull fit of one cohort."""
+    """Survival and cumulative hazard by age (delayed entry), hazard by age band, Weibull fit of each cohort."""
+    from triage.cli.common import check_output_file
     from triage.report.console import progress_bar
-    from triage.report.survival import plot_survival, render_survival
-    from triage.survival.run import survival_of_store
+    from triage.report.pictures import hazard_figure, save_figure, survival_figure
+    from triage.report.survival import plot_survival, render_survivals
+    from triage.survival.run import survival_reports_of_store
 
-    if plot is not None and plot.suffix.lower() not in (".png", ".svg"):
-        fail(f"{plot}: --plot must name a .png or .svg file", Exit.USAGE)
-    if plot is not None and not plot.absolute().parent.is_dir():
-        fail(f"{plot}: --plot folder {plot.absolute().parent} does not exist (create it first)", Exit.USAGE)
+    check_output_file(plot, (".png", ".svg"), "--plot")
+    check_output_file(hazard_plot, (".png", ".svg"), "--hazard-plot")
     with progress_bar("reading snapshots") as update:
-        report, obs = _survival_call(survival_of_store, open_store(store), cohort, by=by,
-                                     count_proactive=events is Events.replacements, mttf_hours=mttf,
-                                     progress=update)
+        reports, obs = _survival_call(survival_reports_of_store, open_store(store), cohorts, by=by,
+                                      count_proactive=events is Events.replacements, mttf_hours=mttf,
+                                      progress=update)
     _survival_notes(obs, obs.as_of, "survival", stale_hours)
-    render_survival(report, fmt)
+    render_survivals(reports, fmt)
     if plot is not None:
-        _survival_call(plot_survival, report, plot)
+        if len(reports) == 1:
+            _survival_call(plot_survival, reports[0], plot)
+        else:
+            _survival_call(save_figure, survival_figure(reports), plot)
         typer.echo(f"survival: plot written to {plot}", err=True)
+    if hazard_plot is not None:
+        _survival_call(save_figure, hazard_figure({r.cohort: r.bands for r in reports}), hazard_plot)
+        typer.echo(f"survival: hazard plot written to {hazard_plot}", err=True)
 
 
 @app.command(epilog="Example: triage compare 'QH-HD8T-A / QA03' 'QH-HD8T-A / QA02' --by model,firmware")

@@ -14,6 +14,7 @@ from rich.markup import escape
 from rich.table import Table
 
 from triage.report.console import stdout_console
+from triage.report.pictures import chart_text
 
 HOURS_PER_YEAR = 8766.0  # for showing ages in years only
 TABLE_CURVE_ROWS = 25
@@ -192,6 +193,21 @@ def survival_record(report) -> dict:
     return plain
 
 
+def render_survivals(reports: list, fmt, out: TextIO | None = None) -> None:
+    """Several cohorts: one report's output as ``render_survival``; more: a JSON list, one CSV of
+    the curves with the cohort as first column, or one set of tables per cohort."""
+    out = out or sys.stdout
+    fmt = getattr(fmt, "value", fmt)
+    if len(reports) == 1 or fmt == "table":
+        for report in reports:
+            render_survival(report, fmt, out)
+    elif fmt == "json":
+        _write_json([survival_record(report) for report in reports], out)
+    else:
+        _write_csv(pd.concat([r.curves.table.assign(cohort=r.cohort)[["cohort", *r.curves.table.columns]]
+                              for r in reports], ignore_index=True), out)
+
+
 def render_survival(report, fmt: str, out: TextIO | None = None, console=None) -> None:
     """Table, JSON (everything), or CSV (the survival curve, one row per failure age)."""
     out = out or sys.stdout
@@ -265,7 +281,8 @@ def plot_survival(report, path: Path) -> Path:
 
     curve = report.curves.table
     fig, ax = plt.subplots(figsize=(7, 4.2))
-    title = f"{report.cohort}: {report.drives} drives, {report.failures} failed, {report.replacements} replaced"
+    title = (f"{chart_text(report.cohort)}: {report.drives} drives, {report.failures} failed, "
+             f"{report.replacements} replaced")
     if not len(curve) or int(curve["failures"].sum()) == 0:
         ax.set_axis_off()
         ax.text(0.5, 0.5, f"no {report.events} in {report.drive_days / 365:,.1f} drive-years:\n"

@@ -66,6 +66,8 @@ class RankResult:
     silent: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=SILENT_REPORT_COLUMNS))
     not_reporting: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=NOT_REPORTING_COLUMNS))
     removed: frozenset = frozenset()  # serials in the removal log
+    flags: pd.DataFrame = field(default_factory=pd.DataFrame)  # every rule firing (rules.evaluate's rows)
+    lost: pd.DataFrame = field(default_factory=pd.DataFrame)  # groups.lost_members' table
 
 
 def summarise_flags(flags: pd.DataFrame) -> pd.DataFrame:
@@ -331,7 +333,8 @@ def rank_store(
         drives = flag_states(drives, previous, as_of)
     summary = not_reporting_summary(silent, sightings, removals)
     silent = silent_flags(silent, previous)[SILENT_REPORT_COLUMNS]
-    return RankResult(drives, groups, model is not None, horizon, as_of, notes, silent, summary, removed)
+    return RankResult(drives, groups, model is not None, horizon, as_of, notes, silent, summary, removed,
+                      flags=flags, lost=lost)
 
 
 def silent_drives(sightings: pd.DataFrame, removals: pd.DataFrame, as_of: datetime,

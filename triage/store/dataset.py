@@ -36,7 +36,7 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
-from typing import Iterable, Iterator, Mapping
+from typing import Iterable, Iterator, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
@@ -317,8 +317,10 @@ class Store:
         columns: list[str] | None = None,
         since: datetime | None = None,
         until: datetime | None = None,
+        serials: Sequence[str] | None = None,
     ) -> pd.DataFrame:
-        """Rows of ``table`` with ``since <= time < until``; only the days in range are opened.
+        """Rows of ``table`` with ``since <= time < until`` (and ``serial`` among ``serials`` when
+        given); only the days in range are opened.
 
         Timestamps come back tz-aware UTC; integer columns holding nulls come back as float64
         with NaN (pandas' default), booleans holding nulls as object.
@@ -344,6 +346,9 @@ class Store:
             until = _utc(until)
             upper = (day <= until.strftime("%Y-%m-%d")) & (stamp < pa.scalar(until, schema.field(time_column).type))
             condition = upper if condition is None else condition & upper
+        if serials is not None:
+            chosen = ds.field("serial").isin(pa.array(list(serials), pa.string()))
+            condition = chosen if condition is None else condition & chosen
         return dataset.to_table(columns=wanted, filter=condition).to_pandas()
 
     def last_times(self, table: str, key: str) -> pd.DataFrame:

@@ -70,6 +70,15 @@ def survival_of_store(store, cohort: str, by: Sequence[str] = ("model",), count_
     return survival_report(obs, cohort, mttf_hours=mttf_hours), obs
 
 
+def survival_reports_of_store(store, cohorts: Sequence[str], by: Sequence[str] = ("model",),
+                              count_proactive: bool = False, mttf_hours: float | None = None,
+                              progress: Callable[[int, int], None] | None = None
+                              ) -> tuple[list[SurvivalReport], Observations]:
+    """(one survival report per cohort, in the order given; observations), read once."""
+    obs = load_observations(store, by, count_proactive, progress)
+    return [survival_report(obs, cohort, mttf_hours=mttf_hours) for cohort in cohorts], obs
+
+
 def fit_store(store, horizon_days: float = 30, by: Sequence[str] = ("model",), count_proactive: bool = False,
               say: Callable[[str], None] | None = None,
               progress: Callable[[int, int], None] | None = None) -> tuple[FleetRiskModel, Path]:
