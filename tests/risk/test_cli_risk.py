@@ -8,14 +8,12 @@ from __future__ import annotations
 
 import csv
 import json
-from types import SimpleNamespace
 
 import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
-import triage.rules
-import triage.survival
+from tests.risk.standins import use_stand_ins
 from triage.cli import app
 from triage.exitcodes import Exit
 from triage.risk.nightly import NIGHTLY_LOCK
@@ -34,11 +32,7 @@ def _stand_in_evaluate(ruleset, history, now=None):
 
 @pytest.fixture
 def store(tmp_path, monkeypatch):
-    monkeypatch.setattr(triage.rules, "load_rules",
-                        lambda dirs, include_defaults=True: SimpleNamespace(rules=[], errors=[], window_days=3),
-                        raising=False)
-    monkeypatch.setattr(triage.rules, "evaluate", _stand_in_evaluate, raising=False)
-    monkeypatch.setattr(triage.survival, "latest_model", lambda store: None, raising=False)
+    use_stand_ins(monkeypatch, _stand_in_evaluate)
     s = Store(tmp_path / "store")
     s.append("snapshots", pd.DataFrame(_nights(["=QZ-0001", "QZ-0002", "QZ-0003"], host="ash-r1-n01")))
     return s

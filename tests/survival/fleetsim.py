@@ -81,3 +81,15 @@ def simulate_fleet(n_drives=600, days=120, seed=7, shape=1.5, scale_hours=60_000
     truth = pd.DataFrame({"serial": serial, "model": model, "entry": entry, "exit": exit_age,
                           "failed": fails, "pending": pending})
     return snapshots, removals, truth
+
+
+def simulated_store(root, **fleet):
+    """A store at ``root`` holding ``simulate_fleet(**fleet)``'s snapshots and removals; returns
+    (store, snapshots)."""
+    from triage.store.dataset import Store
+
+    snapshots, removals, _ = simulate_fleet(**fleet)
+    store = Store(root)
+    store.append("snapshots", snapshots)
+    store.append("removals", removals)
+    return store, snapshots

@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
-from tests.survival.fleetsim import simulate_fleet
+from tests.survival.fleetsim import simulated_store
 from triage.cli import app
 from triage.exitcodes import Exit
 from triage.store.dataset import Store
@@ -23,10 +23,7 @@ runner = CliRunner()
 @pytest.fixture(scope="module")
 def store_root(tmp_path_factory):
     root = tmp_path_factory.mktemp("store")
-    snapshots, removals, _ = simulate_fleet(n_drives=500, days=70, seed=13, scale_hours=25_000)
-    store = Store(root)
-    store.append("snapshots", snapshots)
-    store.append("removals", removals)
+    simulated_store(root, n_drives=500, days=70, seed=13, scale_hours=25_000)
     return root
 
 

@@ -9,12 +9,22 @@ from __future__ import annotations
 
 import sys
 
+import typer
+
 from triage.cli.common import app
 from triage.cli import drive, export, ingest, predict, risk, rules, survival  # noqa: F401  (each registers its commands)
 
 
 def main() -> None:
-    app()
+    from triage.cli.common import fail, os_failure
+
+    try:
+        app()
+    except OSError as exc:  # last resort for any command: one line, not a traceback
+        try:
+            fail(os_failure(exc))
+        except typer.Exit as stop:
+            sys.exit(stop.exit_code)
 
 
 if __name__ == "__main__":

@@ -11,6 +11,7 @@ from typer.core import TyperArgument
 
 from triage import __version__
 from triage.exitcodes import Exit
+from triage.safety import visible
 from triage.risk.score import TIERS
 
 if TYPE_CHECKING:
@@ -103,9 +104,21 @@ def open_store(option: Optional[Path], *, create: bool = False) -> "Store":
     return store
 
 
+def say(line: object) -> None:
+    """One line on stderr, through the one sanitiser (file names and input text included)."""
+    typer.echo(visible(line), err=True)
+
+
+def os_failure(exc: OSError) -> str:
+    """One line for a failed read or write (full disk, permissions): what, where, and that
+    committed data is whole (a commit becomes visible only when complete)."""
+    where = f"{exc.filename}: " if exc.filename else ""
+    return f"{where}{exc.strerror or exc}; nothing half-written is visible, rerun once this is fixed"
+
+
 def fail(message: str, code: Exit = Exit.FAILURE) -> None:
     """One clear line on stderr, then exit with ``code``."""
-    typer.echo(f"triage: {message}", err=True)
+    say(f"triage: {message}")
     raise typer.Exit(int(code))
 
 

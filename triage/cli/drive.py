@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import OutputFormat, StoreOption, app, check_output_file, fail, format_option, open_store
+from triage.cli.common import OutputFormat, StoreOption, app, check_output_file, fail, format_option, open_store, say
 from triage.cli.risk import GroupConfigOption, NoDefaultRulesOption, RulesOption, _risk_inputs
 from triage.exitcodes import Exit
 
@@ -43,4 +43,4 @@ def drive(
         render_drive_table(story)
     if plot is not None:
         plot_drive_history(story, plot)
-        typer.echo(f"drive: plot written to {plot}", err=True)
+        say(f"drive: plot written to {plot}")

@@ -9,7 +9,7 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import StoreOption, app, check_output_file, fail, open_store
+from triage.cli.common import StoreOption, app, check_output_file, fail, open_store, say
 from triage.cli.risk import GroupConfigOption, NoDefaultRulesOption, RulesOption, _risk_inputs
 from triage.exitcodes import Exit
 
@@ -31,12 +31,12 @@ def write_views(store, ruleset, config, *, openmetrics: Optional[Path] = None, h
             from triage.report.openmetrics import openmetrics_text
 
             write_atomically(openmetrics, openmetrics_text(state))
-            typer.echo(f"export: OpenMetrics written to {openmetrics}", err=True)
+            say(f"export: OpenMetrics written to {openmetrics}")
         if html is not None:
             from triage.report.html import html_page
 
             write_atomically(html, html_page(state, top=top))
-            typer.echo(f"report: HTML page written to {html}", err=True)
+            say(f"report: HTML page written to {html}")
     except OSError as exc:
         fail(f"cannot write {exc.filename or ''}: {exc.strerror or exc}", Exit.FAILURE)
 

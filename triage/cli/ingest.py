@@ -7,9 +7,10 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import OutputFormat, StoreOption, app, fail, format_option, open_store
+from triage.cli.common import OutputFormat, StoreOption, app, fail, format_option, open_store, os_failure, say
 from triage.cli.risk import _print_cautions, _risk_inputs
 from triage.exitcodes import Exit
+from triage.safety import visible
 
 
 @app.command(
@@ -32,24 +33,25 @@ def ingest(
         fail(str(exc), Exit.USAGE)
     except StoreLocked as exc:
         fail(str(exc), Exit.LOCKED)
+    except OSError as exc:  # a full disk, a store folder we may not write
+        fail(os_failure(exc), Exit.FAILURE)
     for note in report.empty_folders:
-        typer.echo(f"ingest: {note}", err=True)
+        say(f"ingest: {note}")
     for rejected in report.rejected[:20]:
-        typer.echo(f"quarantined: {rejected}", err=True)
+        say(f"quarantined: {rejected}")
     if len(report.rejected) > 20:
-        typer.echo(f"quarantined: ... {len(report.rejected) - 20} more in {target.quarantine_dir}", err=True)
+        say(f"quarantined: ... {len(report.rejected) - 20} more in {target.quarantine_dir}")
     stored = ", ".join(f"{n} {t}" for t, n in sorted(report.stored.items())) or "nothing new"
-    typer.echo(
+    say(
         f"ingest: {report.files_read} file(s) read, {report.files_skipped} already stored; "
-        f"stored {stored}; {len(report.rejected)} line(s) quarantined",
-        err=True,
+        f"stored {stored}; {len(report.rejected)} line(s) quarantined"
     )
     if report.repeated:
-        typer.echo(f"ingest: {report.repeated} capture(s) repeated a (serial, taken_at) already read; "
-                   "the first one read is kept", err=True)
+        say(f"ingest: {report.repeated} capture(s) repeated a (serial, taken_at) already read; "
+            "the first one read is kept")
     if report.clamped:
-        typer.echo(f"ingest: {report.clamped} capture(s) hold a counter beyond 2^63-1, stored as "
-                   "2^63-1 with counters_clamped set", err=True)
+        say(f"ingest: {report.clamped} capture(s) hold a counter beyond 2^63-1, stored as "
+            "2^63-1 with counters_clamped set")
     if report.empty_folders:
         raise typer.Exit(int(Exit.USAGE))
     if report.rejected:
@@ -104,7 +106,7 @@ def capture(
     else:
         targets, skipped = enumerate_targets()
         for item in skipped:
-            typer.echo(f"capture: left out {item.path}: {item.reason}", err=True)
+            say(f"capture: left out {item.path}: {item.reason}")
         if not targets:
             fail("no local SATA or NVMe drive found under /sys/block and /sys/class/nvme; "
                  "name the devices on the command line", Exit.FAILURE)
@@ -115,13 +117,13 @@ def capture(
     except (OutputError, FileNotFoundError, ValueError) as exc:
         fail(str(exc), Exit.FAILURE)
     for failure in result.failures:
-        typer.echo(f"triage: capture: {failure.describe()}", err=True)
+        say(f"triage: capture: {failure.describe()}")
     for warning in result.warnings:
-        typer.echo(f"capture: warning: {warning}", err=True)
+        say(f"capture: warning: {warning}")
     if result.path is None:  # nothing read is a failed capture, not "some drives unreadable"
         fail(f"capture: none of {len(targets)} drive(s) could be read; no file written", Exit.FAILURE)
-    typer.echo(str(result.path))
-    typer.echo(f"capture: {len(result.captured)} of {len(targets)} drive(s) written to {result.path}", err=True)
+    typer.echo(visible(result.path, None))
+    say(f"capture: {len(result.captured)} of {len(targets)} drive(s) written to {result.path}")
     raise typer.Exit(int(result.exit_code))
 
 
@@ -153,8 +155,8 @@ def demo(
         folder, reused = prepare_demo_folder(work, spec)
     except NotADemoFolder as exc:
         fail(str(exc), Exit.USAGE)
-    typer.echo(f"demo: simulating {drives} drives x {days} nights (seed {seed}) into {work}"
-               + (" (same fleet as last time: the store is reused)" if reused else ""), err=True)
+    say(f"demo: simulating {drives} drives x {days} nights (seed {seed}) into {work}"
+               + (" (same fleet as last time: the store is reused)" if reused else ""))
     fleet = generate_fleet(spec)
     with progress_bar("writing captures") as progress:
         write_captures(fleet, folder.captures, progress=progress)
@@ -164,12 +166,12 @@ def demo(
         report = run_nightly(
             Store(folder.store), folder.captures, folder.tickets, ruleset, refit_days=0.0, config=config,
             ingest=lambda store, paths: ingest_paths(store, paths, progress=progress),
-            log=lambda line: typer.echo(f"demo: {line}", err=True), stale_hours=None)
-    typer.echo(report.summary(), err=True)
+            log=lambda line: say(f"demo: {line}"), stale_hours=None)
+    say(report.summary())
     result = report.result
     _print_cautions(result)
     render_ranked(result, filter_ranked(result.drives, flagged_only=True, top=top), fmt, report.silence)
-    typer.echo(f"demo: tickets in {folder.tickets}; explore with: triage cohorts --store {folder.store}, "
-               f"triage survival <cohort> --store {folder.store}, triage rank --store {folder.store}", err=True)
+    say(f"demo: tickets in {folder.tickets}; explore with: triage cohorts --store {folder.store}, "
+               f"triage survival <cohort> --store {folder.store}, triage rank --store {folder.store}")
     if report.rejected:
         raise typer.Exit(int(Exit.INPUT_REJECTED))

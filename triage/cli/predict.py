@@ -9,7 +9,7 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import OutputFormat, StoreOption, app, fail, format_option, open_store
+from triage.cli.common import OutputFormat, StoreOption, app, fail, format_option, open_store, say
 from triage.cli.risk import NoDefaultRulesOption, RulesOption, _risk_inputs
 from triage.exitcodes import Exit
 
@@ -62,7 +62,7 @@ def backtest(
     render_backtest(result, fmt)
     if plot is not None:
         plot_backtest(result, plot)
-        typer.echo(f"backtest: plot written to {plot}", err=True)
+        say(f"backtest: plot written to {plot}")
 
 
 @app.command(epilog="Example: triage forecast --days 90 --service-level 0.95 --by model --format table")

@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import OutputFormat, StaleOption, StoreOption, Tier, app, fail, format_option, open_store
+from triage.cli.common import OutputFormat, StaleOption, StoreOption, Tier, app, fail, format_option, open_store, os_failure, say
 from triage.exitcodes import Exit
 from triage.risk.score import TIERS
 
@@ -21,12 +21,12 @@ def _print_cautions(result) -> None:
     if not len(groups):
         return
     for caution in groups.loc[groups["degraded"], "caution"]:
-        typer.echo(f"caution: {caution}", err=True)
+        say(f"caution: {caution}")
 
 
 def _print_warnings(warnings: list[str]) -> None:
     for line in warnings:
-        typer.echo(f"warning: {line}", err=True)
+        say(f"warning: {line}")
 
 
 # -- risk: rank, tickets, nightly (triage/risk, triage/report/rank.py, triage/report/tickets.py) --
@@ -70,7 +70,7 @@ def _rank(store, ruleset, config, tickets: Optional[Path], stale_hours: float):
     except (OSError, ValueError) as exc:  # e.g. --tickets names a file that is not our export
         fail(str(exc), Exit.FAILURE)
     for note in result.notes:
-        typer.echo(f"note: {note}", err=True)
+        say(f"note: {note}")
     return result, silence_warnings(result, stale_hours=stale_hours)
 
 
@@ -139,7 +139,7 @@ def tickets(
     except (OSError, ValueError) as exc:
         fail(str(exc), Exit.FAILURE)
     _print_warnings(warnings)
-    typer.echo(summary_line(counts, out, result.as_of), err=True)
+    say(summary_line(counts, out, result.as_of))
     raise typer.Exit(int(Exit.combine(Exit.NOT_REPORTING if warnings else Exit.OK,
                                       Exit.NEW_FLAGS if counts.new else Exit.OK)))
 
@@ -178,7 +178,7 @@ def nightly(
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
     try:
         report = run_nightly(target, dumps, out, ruleset, refit_days=refit_days, config=config,
-                             log=lambda line: typer.echo(line, err=True), stale_hours=stale_hours,
+                             log=lambda line: say(line), stale_hours=stale_hours,
                              min_severity=min_severity.value if min_severity else None)
         if summary is not None:
             report.write_summary(summary)
@@ -186,6 +186,8 @@ def nightly(
         fail(f"{exc}; this run did nothing", Exit.LOCKED)
     except (FileNotFoundError, ValueError) as exc:
         fail(str(exc), Exit.USAGE)
+    except OSError as exc:  # a full disk, a folder we may not write
+        fail(os_failure(exc), Exit.FAILURE)
     except Exception as exc:  # cron must see one clear line and FAILURE, not a traceback
         fail(f"nightly run failed: {type(exc).__name__}: {exc}", Exit.FAILURE)
     try:
@@ -194,5 +196,5 @@ def nightly(
         raise
     except Exception as exc:  # the tickets are written; the extra views failing is still a failed run
         fail(f"nightly views failed: {type(exc).__name__}: {exc}", Exit.FAILURE)
-    typer.echo(report.summary(), err=True)
+    say(report.summary())
     raise typer.Exit(int(report.exit))

@@ -8,8 +8,9 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import OutputFormat, app, fail, format_option
+from triage.cli.common import OutputFormat, app, fail, format_option, say
 from triage.exitcodes import Exit
+from triage.safety import visible
 
 
 # -- rules: check and list rule files (triage/rules, docs/rules.md) ----------------------------
@@ -41,7 +42,7 @@ def rules_check(
     """Validate rule files: one 'file:line: message' per problem on stdout; exit 1 if there is any."""
     ruleset = _load_ruleset(dirs, no_default_rules)
     for error in ruleset.errors:
-        typer.echo(str(error))
+        typer.echo(visible(error))
     disabled = len(ruleset.all_rules) - len(ruleset.rules)
     if ruleset.errors:
         fail(f"{len(ruleset.errors)} error(s) in rule files; those rules are not loaded, "
@@ -62,20 +63,20 @@ def rules_list(
     import csv
     import json
 
-    from rich.markup import escape
     from rich.table import Table
 
-    from triage.report.console import stdout_console
+    from triage.report.console import markup_text, stdout_console
+    from triage.safety import cell
     from triage.rules import rules_table
 
     ruleset = _load_ruleset(dirs, no_default_rules)
     for error in ruleset.errors:
-        typer.echo(f"rule error (not loaded): {error}", err=True)
+        say(f"rule error (not loaded): {error}")
     table = rules_table(ruleset)
     if fmt is OutputFormat.csv:
         writer = csv.writer(sys.stdout, lineterminator="\r\n")  # RFC 4180 line ends
         writer.writerow(table.columns)
-        writer.writerows(table.itertuples(index=False))
+        writer.writerows([cell(value) for value in row] for row in table.itertuples(index=False))
     elif fmt is OutputFormat.json:
         typer.echo(json.dumps(table.to_dict(orient="records"), indent=2))
     else:
@@ -90,7 +91,7 @@ def rules_list(
             shown.add_column("title", overflow="fold", ratio=2)
             shown.add_column("source", overflow="fold", ratio=3)
         for row in table.itertuples(index=False):
-            cells = [escape(str(getattr(row, c))) for c in ("id", "severity", "category", "status", "title", "source")]
+            cells = [markup_text(getattr(row, c)) for c in ("id", "severity", "category", "status", "title", "source")]
             if wide:
                 shown.add_row(*cells)
             else:

@@ -8,7 +8,7 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import OutputFormat, StaleOption, StoreOption, app, fail, format_option, open_store
+from triage.cli.common import OutputFormat, StaleOption, StoreOption, app, fail, format_option, open_store, say
 from triage.exitcodes import Exit
 
 
@@ -56,12 +56,12 @@ def _survival_notes(obs, as_of=None, command: str = "", stale_hours: float | Non
     from triage.risk.score import moment_text
 
     if command:
-        typer.echo(f"{command}: as of {moment_text(as_of)} (newest capture used)", err=True)
+        say(f"{command}: as of {moment_text(as_of)} (newest capture used)")
         warning = stale_warning(as_of, stale_hours=stale_hours)
         if warning:
-            typer.echo(f"warning: {warning}", err=True)
+            say(f"warning: {warning}")
     for line in [*exclusion_lines(obs.exclusions), *return_lines(obs.returns)]:
-        typer.echo(line, err=True)
+        say(line)
 
 
 @app.command(epilog="Example: triage fit --horizon-days 30 --by model --store /srv/triage/store")
@@ -81,9 +81,9 @@ def fit(
     with progress_bar("reading snapshots") as update:
         model, path = _survival_call(fit_store, target, horizon_days=horizon_days, by=by,
                                      count_proactive=events is Events.replacements,
-                                     say=lambda message: typer.echo(f"fit: {message}", err=True), progress=update)
+                                     say=lambda message: say(f"fit: {message}"), progress=update)
     for line in exclusion_lines(model.exclusions_):
-        typer.echo(line, err=True)
+        say(line)
     render_fit(model, path, fmt)
 
 
@@ -148,10 +148,10 @@ def survival(
             _survival_call(plot_survival, reports[0], plot)
         else:
             _survival_call(save_figure, survival_figure(reports), plot)
-        typer.echo(f"survival: plot written to {plot}", err=True)
+        say(f"survival: plot written to {plot}")
     if hazard_plot is not None:
         _survival_call(save_figure, hazard_figure({r.cohort: r.bands for r in reports}), hazard_plot)
-        typer.echo(f"survival: hazard plot written to {hazard_plot}", err=True)
+        say(f"survival: hazard plot written to {hazard_plot}")
 
 
 @app.command(epilog="Example: triage compare 'QH-HD8T-A / QA03' 'QH-HD8T-A / QA02' --by model,firmware")

@@ -42,6 +42,7 @@ from triage.ingest.reading import (
     excerpt,
     is_utf8_text,
 )
+from triage.process import die_with_parent
 from triage.store.schema import (
     ATA_COUNTER_ATTRIBUTES,
     ATA_POWER_ON_HOURS_ID,
@@ -265,7 +266,9 @@ def capture_parts(
             yield from _GroupReader(group, now).parts(max_lines)
         return
     context = multiprocessing.get_context("fork") if "fork" in multiprocessing.get_all_start_methods() else None
-    with ProcessPoolExecutor(max_workers=workers, mp_context=context) as pool:
+    # workers die with this process: a killed ingest leaves no orphan behind (triage/process.py)
+    with ProcessPoolExecutor(max_workers=workers, mp_context=context,
+                             initializer=die_with_parent, initargs=(os.getpid(),)) as pool:
         todo = iter(groups)
         window: deque = deque()
 

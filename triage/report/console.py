@@ -8,7 +8,20 @@ from contextlib import contextmanager
 from typing import Callable, Iterator
 
 from rich.console import Console
+from rich.markup import escape
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+from triage.safety import TEXT_LIMIT, name, visible
+
+
+def markup_name(value: object) -> str:
+    """An identifier (host, slot, serial...) for a rich table: sanitised, cut, markup escaped."""
+    return escape(name(value))
+
+
+def markup_text(value: object, limit: int | None = TEXT_LIMIT) -> str:
+    """Free text (evidence, actions, paths) for rich output: sanitised, cut, markup escaped."""
+    return escape(visible(value, limit))
 
 
 def stderr_console() -> Console:

@@ -10,10 +10,11 @@ import sys
 from pathlib import Path
 from typing import TextIO
 
-from rich.markup import escape
 from rich.table import Table
 
+from triage.report.console import markup_name, markup_text
 from triage.report.survival import _console, _num, _plain, _records, _write_csv, _write_json
+from triage.safety import cell
 
 BASELINE = "drive-self-assessment"
 COMBINED = "combined"
@@ -80,7 +81,7 @@ def render_backtest(result, fmt: str, out: TextIO | None = None) -> None:
     for name in ("method", "caught", "recall", "false alarms", "rate", "lead (d)"):
         grid.add_column(name, justify="left" if name == "method" else "right", overflow="fold")
     for row in _records(result.methods):
-        grid.add_row(escape(row["method"]), f"{row['caught']}/{row['failures']}", _num(row["recall"], ".1%"),
+        grid.add_row(markup_name(row["method"]), f"{row['caught']}/{row['failures']}", _num(row["recall"], ".1%"),
                      f"{row['false_alarm_drives']}/{row['scored_drives']}", _num(row["false_alarm_rate"], ".2%"),
                      _num(row["lead_days_median"], ".1f"))
     console.print(grid)
@@ -89,7 +90,7 @@ def render_backtest(result, fmt: str, out: TextIO | None = None) -> None:
                       f"{result.forecast_coverage:.0%} of {len(result.forecasts)} forecasts "
                       f"(fleet and cohorts, at each refit)")
     for note in result.notes:
-        console.print(f"note: {escape(note)}")
+        console.print(f"note: {markup_text(note)}")
 
 
 def plot_backtest(result, path: Path) -> Path:
@@ -143,7 +144,7 @@ def render_forecast(forecast, fmt: str, out: TextIO | None = None) -> None:
         writer = csv.writer(out, lineterminator="\r\n")  # RFC 4180 records end in CRLF
         writer.writerow(FORECAST_KEYS)
         for row in rows:
-            writer.writerow([row[k] for k in FORECAST_KEYS])
+            writer.writerow([cell(row[k]) if isinstance(row[k], str) else row[k] for k in FORECAST_KEYS])
         return
     console = _console()
     console.print(f"failures expected in the {forecast.days:g} days after {forecast.as_of:%Y-%m-%d %H:%M} UTC "
@@ -152,8 +153,8 @@ def render_forecast(forecast, fmt: str, out: TextIO | None = None) -> None:
     for name in ("scope", "name", "drives", "expected", "90 % range", "spares"):
         grid.add_column(name, justify="left" if name in ("scope", "name") else "right", overflow="fold")
     for row in rows:
-        grid.add_row(row["scope"], escape(str(row["name"])), f"{row['drives']:,}", f"{row['expected']:.1f}",
+        grid.add_row(row["scope"], markup_name(row["name"]), f"{row['drives']:,}", f"{row['expected']:.1f}",
                      f"{row['interval_low']} - {row['interval_high']}", str(row["spares"]))
     console.print(grid)
     for note in forecast.notes:
-        console.print(f"note: {escape(note)}")
+        console.print(f"note: {markup_text(note)}")

@@ -13,11 +13,11 @@ import sys
 from typing import TextIO
 
 import pandas as pd
-from rich.markup import escape
 from rich.table import Table
 
-from triage.report.console import stdout_console
+from triage.report.console import markup_name, markup_text, stdout_console
 from triage.risk.score import moment_text
+from triage.safety import NAME_LIMIT, TEXT_LIMIT, cell
 
 JSON_FIELDS = ["rank", "state", "first_raised", "severity", "score", "p_fail", "serial", "model", "host",
                "slot", "group", "category", "categories", "action", "actions", "rules", "evidence",
@@ -72,41 +72,45 @@ def render_json(result, drives: pd.DataFrame, warnings: list[str], out: TextIO |
 
 def render_csv(result, drives: pd.DataFrame, out: TextIO | None = None) -> None:
     out = out or sys.stdout
-    from triage.risk.tickets import neutralise  # same formula-injection guard as the ticket file
-
     as_of = _iso(result.as_of) or ""
     writer = csv.writer(out, quoting=csv.QUOTE_MINIMAL, lineterminator="\r\n")
     writer.writerow(CSV_FIELDS)
     rows = [dict(rec, as_of=as_of) for rec in records(drives, JSON_FIELDS)]
     rows += [dict(rec, as_of=as_of) for rec in records(result.silent, SILENT_FIELDS)]
+    limits = [NAME_LIMIT if f in _NAME_FIELDS else TEXT_LIMIT for f in CSV_FIELDS]
     for rec in rows:
         cells = [rec.get(f) for f in CSV_FIELDS]
         cells = [" ".join(v) if f == "rules" and v else "; ".join(v) if f == "evidence" and v else v
                  for f, v in zip(CSV_FIELDS, cells)]
-        writer.writerow([neutralise("" if c is None else c) for c in cells])
+        # the same sanitiser as the ticket file (triage.safety): escapes, cuts, formula guard
+        writer.writerow([cell(c, limit) for c, limit in zip(cells, limits)])
 
 
 #: Below this many terminal columns the table folds into four columns (80-column terminals, mail).
 WIDE_COLUMNS = 140
+#: Widest the where / drive columns of the wide table grow (a usual host/slot fits on one line).
+WIDE_NAME_WIDTH = 36
+#: Stored identifiers: cut shorter than free text in CSV (triage.safety).
+_NAME_FIELDS = frozenset({"serial", "model", "host", "slot", "group"})
 
 
 def _cells(d) -> dict[str, str]:
-    """The text of one drive's cells (rich markup, firmware-derived strings escaped)."""
+    """The text of one drive's cells (rich markup; every stored string through triage.safety)."""
     sev = d.severity or "-"
-    where = f"{escape(str(d.host or '?'))}/{escape(str(d.slot or '?'))}"
+    where = f"{markup_name(d.host or '?')}/{markup_name(d.slot or '?')}"
     state = "" if not d.state else (d.state if d.state == "new" else f"{d.state} since {d.first_raised}")
     return {
         "rank": str(d.rank),
         "where": where,
-        "group": f"[dim]{escape(d.group)}[/dim]" if isinstance(d.group, str) else "",
-        "drive": f"{escape(str(d.model or '?'))}\n{escape(str(d.serial))}",
+        "group": f"[dim]{markup_name(d.group)}[/dim]" if isinstance(d.group, str) else "",
+        "drive": f"{markup_name(d.model or '?')}\n{markup_name(d.serial)}",
         "age": "" if pd.isna(d.age_days) else f"{d.age_days / 365.25:.1f} y",
         "p": "n/a" if pd.isna(d.p_fail) else f"{d.p_fail:.1%}",
-        "severity": f"[{_STYLE[sev]}]{sev}[/]" if sev in _STYLE else sev,
+        "severity": f"[{_STYLE[sev]}]{sev}[/]" if sev in _STYLE else markup_name(sev),
         "score": f"score {d.score:.3f}",
         "state": f"[bold]{state}[/bold]" if d.state == "new" else state,
-        "evidence": "\n".join(escape(e) for e in d.evidence) or "-",
-        "action": f"[bold red]{escape(d.action)}[/]" if d.degraded else escape(d.action),
+        "evidence": "\n".join(markup_text(e) for e in d.evidence) or "-",
+        "action": f"[bold red]{markup_text(d.action)}[/]" if d.degraded else markup_text(d.action),
     }
 
 
@@ -122,7 +126,10 @@ def render_table(result, drives: pd.DataFrame, warnings: list[str]) -> None:
     table = Table(title=_title(result, warnings), title_justify="left", expand=False)
     if console.width >= WIDE_COLUMNS:
         for head in ("#", "where", "drive", "age", p_head, "tier / score", "flag"):
-            table.add_column(head, no_wrap=True)
+            if head in ("where", "drive"):  # stored strings: folded, so one long slot cannot squeeze the rest
+                table.add_column(head, overflow="fold", max_width=WIDE_NAME_WIDTH)
+            else:
+                table.add_column(head, no_wrap=True)
         table.add_column("evidence", ratio=3)
         table.add_column("what to do", ratio=2)
         for d in drives.itertuples(index=False):
@@ -143,11 +150,11 @@ def render_table(result, drives: pd.DataFrame, warnings: list[str]) -> None:
             table.add_row(c["rank"], where, risk, f"{c['evidence']}\n[bold]-> {c['action']}[/bold]")
     console.print(table)
     if warnings:
-        console.print("\n".join(f"[bold red]warning:[/] {escape(line)}" for line in warnings))
+        console.print("\n".join(f"[bold red]warning:[/] {markup_text(line)}" for line in warnings))
     flagged = result.silent[result.silent["severity"].notna()] if len(result.silent) else result.silent
     for d in flagged.itertuples(index=False):
-        console.print(f"[bold red]not reporting, flagged before:[/] {escape(str(d.serial))} at "
-                      f"{escape(str(d.host or '?'))}/{escape(str(d.slot or '?'))}: {escape(str(d.severity))} "
+        console.print(f"[bold red]not reporting, flagged before:[/] {markup_name(d.serial)} at "
+                      f"{markup_name(d.host or '?')}/{markup_name(d.slot or '?')}: {markup_name(d.severity)} "
                       f"since {d.first_raised}, last seen {moment_text(d.last_seen)}")
 
 

@@ -10,11 +10,11 @@ from pathlib import Path
 from typing import TextIO
 
 import pandas as pd
-from rich.markup import escape
 from rich.table import Table
 
-from triage.report.console import stdout_console
+from triage.report.console import markup_name, markup_text, stdout_console
 from triage.report.pictures import chart_text
+from triage.safety import cell, name, visible
 
 HOURS_PER_YEAR = 8766.0  # for showing ages in years only
 TABLE_CURVE_ROWS = 25
@@ -67,7 +67,7 @@ def _write_csv(table: pd.DataFrame, out: TextIO) -> None:
     writer = csv.writer(out, lineterminator="\r\n")  # RFC 4180 records end in CRLF
     writer.writerow(table.columns)
     for row in _records(table):
-        writer.writerow(["" if v is None else v for v in row.values()])
+        writer.writerow([cell(v) if isinstance(v, str) else "" if v is None else v for v in row.values()])
 
 
 def render_cohorts(table: pd.DataFrame, fmt: str, out: TextIO | None = None) -> None:
@@ -90,7 +90,7 @@ def _cohort_notes(row: dict) -> str:
     if row["small_sample"]:
         notes.append("small sample")
     if row.get("phase_note"):
-        notes.append(escape(row["phase_note"]))
+        notes.append(markup_text(row["phase_note"]))
     return "; ".join(notes)
 
 
@@ -119,7 +119,7 @@ def cohort_grid(table: pd.DataFrame, width: int) -> Table:
             grid.add_column(head, justify="left" if head in ("cohort", "phase", "note") else "right",
                             overflow="fold")
         for row in rows:
-            cells = [escape(str(row["cohort"])), _num(row["afr"], ".2f"), _range(row, "afr_low", "afr_high"),
+            cells = [markup_name(row["cohort"]), _num(row["afr"], ".2f"), _range(row, "afr_low", "afr_high"),
                      _num(row["arr"], ".2f"), _range(row, "arr_low", "arr_high")]
             if datasheet:
                 cells.append(_num(row["datasheet_afr"], ".2f"))
@@ -136,7 +136,7 @@ def cohort_grid(table: pd.DataFrame, width: int) -> Table:
     grid.add_column("replaced (ARR %/yr)", justify="right", no_wrap=True)
     grid.add_column("phase (Weibull shape)", overflow="fold", ratio=3)
     for row in rows:
-        who = f"{escape(str(row['cohort']))}\n{row['drives']} drives\n{_num(row['drive_days'] / 365.0, ',.1f')} drive-years"
+        who = f"{markup_name(row['cohort'])}\n{row['drives']} drives\n{_num(row['drive_days'] / 365.0, ',.1f')} drive-years"
         failed = f"{row['failures']}\n{_num(row['afr'], '.2f')}\n{_range(row, 'afr_low', 'afr_high')}"
         if datasheet:
             failed += f"\ndatasheet {_num(row['datasheet_afr'], '.2f')}"
@@ -221,7 +221,7 @@ def render_survival(report, fmt: str, out: TextIO | None = None, console=None) -
     console = console or _console()
     w = report.weibull
     lines = [
-        f"[bold]{escape(report.cohort)}[/bold]  ({report.drives} drives, {report.drive_days / 365:,.1f} "
+        f"[bold]{markup_name(report.cohort)}[/bold]  ({report.drives} drives, {report.drive_days / 365:,.1f} "
         f"drive-years, {report.failures} failed, {report.replacements} replaced"
         f"{', small sample' if report.small_sample else ''})",
         f"AFR {_num(report.afr, '.2f')} %/yr (95 %: {_num(report.afr_low, '.2f')} - {_num(report.afr_high, '.2f')}), "
@@ -231,7 +231,7 @@ def render_survival(report, fmt: str, out: TextIO | None = None, console=None) -
         lines.append(f"datasheet MTTF {report.mttf_hours:,.0f} h implies AFR {report.datasheet_afr:.2f} %/yr")
     lines.append(f"Weibull shape {_num(w.shape, '.2f')} (95 %: {_num(w.shape_low, '.2f')} - "
                  f"{_num(w.shape_high, '.2f')}), scale {_years(w.scale)} years: {w.phase}"
-                 + (f" ({escape(w.phase_note)})" if w.phase_note else ""))
+                 + (f" ({markup_text(w.phase_note)})" if w.phase_note else ""))
     lines.append(f"events in the curves and the fit: {report.events}"
                  + (" (proactive pulls censored)" if report.events == "failures" else " (failed or proactive)"))
     for line in lines:
@@ -281,7 +281,7 @@ def plot_survival(report, path: Path) -> Path:
 
     curve = report.curves.table
     fig, ax = plt.subplots(figsize=(7, 4.2))
-    title = (f"{chart_text(report.cohort)}: {report.drives} drives, {report.failures} failed, "
+    title = (f"{chart_text(name(report.cohort))}: {report.drives} drives, {report.failures} failed, "
              f"{report.replacements} replaced")
     if not len(curve) or int(curve["failures"].sum()) == 0:
         ax.set_axis_off()
@@ -374,14 +374,14 @@ def render_compare(c, fmt: str, out: TextIO | None = None, console=None) -> None
         return
     console = console or _console()
     r = c.rates
-    console.print(escape(verdict(c)))
+    console.print(markup_text(verdict(c)))
     grid = Table(title=f"{c.events} per drive-day, by {','.join(c.by)}", title_justify="left")
     for head in ("cohort", "drives", "drive-years", c.events, "per year %", "median age (years)"):
         grid.add_column(head, justify="left" if head == "cohort" else "right", overflow="fold")
     for label, drives, k, days, age in ((c.a, c.drives_a, r.failures_a, r.drive_days_a, c.median_age_a_hours),
                                         (c.b, c.drives_b, r.failures_b, r.drive_days_b, c.median_age_b_hours)):
         rate = 100 * k / (days / 365.0) if days > 0 else math.nan
-        grid.add_row(escape(label), str(drives), _num(days / 365.0, ",.1f"), str(k), _num(rate, ".2f"), _years(age))
+        grid.add_row(markup_name(label), str(drives), _num(days / 365.0, ",.1f"), str(k), _num(rate, ".2f"), _years(age))
     console.print(grid)
     if c.age_confounded:
         console.print(f"note: the two cohorts were watched at different ages (median {_years(c.median_age_a_hours)} "
@@ -422,7 +422,7 @@ def render_fit(model, path: Path, fmt: str, out: TextIO | None = None) -> None:
         return
     console = _console()
     window = model.data_window_
-    console.print(f"saved {escape(str(path))}")
+    console.print(f"saved {markup_text(path)}")
     console.print(f"data {window['first_taken_at']} to {window['last_taken_at']}: {window['snapshots']:,} "
                   f"snapshots, {window['drives']:,} drives, {window['failures']:,} failures, "
                   f"{window['landmark_rows']:,} drive states at {window['landmarks']} weekly landmarks, "
@@ -462,13 +462,12 @@ def return_lines(returns: int) -> list[str]:
 
 
 def exclusion_lines(exclusions: pd.DataFrame, show: int = 5) -> list[str]:
-    """A short stderr note about drives left out, with a few examples (serials escaped by caller's echo)."""
+    """A short stderr note about drives left out, with a few examples (every value sanitised)."""
     if exclusions is None or exclusions.empty:
         return []
     lines = [f"note: {len(exclusions)} drive(s) excluded for data quality:"]
     for row in exclusions.head(show).itertuples(index=False):
-        serial = str(row.serial).encode("unicode_escape").decode("ascii")
-        lines.append(f"note:   {serial}: {row.reason}")
+        lines.append(f"note:   {name(row.serial)}: {visible(row.reason)}")
     if len(exclusions) > show:
         lines.append(f"note:   ... and {len(exclusions) - show} more")
     return lines

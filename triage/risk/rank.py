@@ -33,6 +33,7 @@ from triage.risk.score import (
     severity_name,
     tier_index,
 )
+from triage.store.dataset import EARLIEST_DAY
 
 #: Days of captures looked at to notice a member that went missing (at least this many).
 GROUP_LOOKBACK_DAYS = 7
@@ -289,18 +290,22 @@ def rank_store(
         from triage.rules import evaluate  # noqa: PLC0415  (rules layer, to our left)
     if model is _AUTO:
         model = _latest_model(store, notes)
+    odd = store.odd_days("snapshots")
+    if odd:  # stored before ingest checked dates; the store leaves them out of every read
+        notes.append(f"{len(odd)} capture day(s) dated in the future or before {EARLIEST_DAY} ignored "
+                     f"(e.g. day={odd[-1]}): check the clocks of the hosts that wrote them")
     days = store.days("snapshots")
-    if not days:
-        empty = pd.DataFrame(columns=RANK_COLUMNS)
-        return RankResult(empty, pd.DataFrame(), model is not None, getattr(model, "horizon_days", None), None,
-                          notes + ["the store holds no captures yet"])
-    newest = datetime.strptime(days[-1], "%Y-%m-%d").replace(tzinfo=timezone.utc)
+    newest = datetime.strptime(days[-1], "%Y-%m-%d").replace(tzinfo=timezone.utc) if days else None
     # enough history for the rules, for a missing group member, and to see every drive that
     # reported within ``silent_hours``
     lookback = max(int(getattr(ruleset, "window_days", 0) or 0), GROUP_LOOKBACK_DAYS, int(silent_hours // 24) + 1)
-    history = store.read("snapshots", since=newest - timedelta(days=lookback))
+    history = store.read("snapshots", since=newest - timedelta(days=lookback)) if days else None
+    if history is None or history.empty:
+        empty = pd.DataFrame(columns=RANK_COLUMNS)
+        return RankResult(empty, pd.DataFrame(), model is not None, getattr(model, "horizon_days", None), None,
+                          notes + ["the store holds no captures yet"])
     removals = store.read("removals")
-    as_of = history["taken_at"].max().to_pydatetime()
+    as_of = history["taken_at"].max().to_pydatetime()  # the newest capture not in the future
 
     # each drive's last sighting: recent ones from the history read above, older ones from the store
     detail = ["serial", "taken_at", "model", "host", "slot", "group"]

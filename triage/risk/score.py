@@ -23,6 +23,8 @@ from typing import Iterable
 
 import pandas as pd
 
+from triage.safety import name
+
 #: Action tiers, most urgent first. "check-path" (cable, backplane, controller) comes before
 #: "watch": it is work to do tonight, even though it points away from the drive.
 TIERS = ("replace-now", "replace-soon", "check-path", "watch")
@@ -112,12 +114,12 @@ def degraded_caution(group: str, lost: pd.DataFrame | None = None, n_lost: int =
     """The caution for a degraded group, naming each lost member and when it was last seen."""
     if lost is not None and len(lost):
         members = ", ".join(
-            f"lost {row.serial} at {_text(getattr(row, 'host', None))}/{_text(getattr(row, 'slot', None))}, "
+            f"lost {name(row.serial)} at {_text(getattr(row, 'host', None))}/{_text(getattr(row, 'slot', None))}, "
             f"last seen {moment_text(getattr(row, 'last_seen', None))}"
             for row in lost.itertuples(index=False))
     else:
         members = f"{n_lost} member(s) lost"
-    return DEGRADED_CAUTION.format(group=group, lost=members)
+    return DEGRADED_CAUTION.format(group=name(group), lost=members)  # stored names cut (triage.safety)
 
 
 def action_text(actions: list[str], caution: str | None = None) -> str:
@@ -129,7 +131,7 @@ def action_text(actions: list[str], caution: str | None = None) -> str:
 
 
 def _text(value) -> str:
-    return "?" if value is None or (isinstance(value, float) and pd.isna(value)) else str(value)
+    return "?" if value is None or (isinstance(value, float) and pd.isna(value)) else name(value)
 
 
 def moment_text(value) -> str:

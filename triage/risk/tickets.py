@@ -11,10 +11,10 @@
   open stays open while its flag fires, so raising the bar never clears a ticket by itself.
 * File format: RFC 4180 (comma separated, CRLF line ends, fields quoted when they hold a comma,
   quote or line break). Written to a temporary file and renamed, so a reader never sees half.
-* Spreadsheet formula injection: any cell starting with ``= + - @``, TAB or CR gets a leading
-  single quote, as the OWASP "CSV Injection" page advises
-  (https://owasp.org/www-community/attacks/CSV_Injection). Serials, models and evidence come from
-  drive firmware and must not run as formulas when an operator opens the file.
+* Every cell goes through ``triage.safety.cell`` (the one sanitiser): control characters
+  escaped, long values cut with a marker, and a leading single quote before anything a
+  spreadsheet could run as a formula. Serials, models and evidence come from drive firmware,
+  host, slot and group from capture lines: none of it may run when an operator opens the file.
 """
 
 from __future__ import annotations
@@ -29,7 +29,9 @@ from pathlib import Path
 
 import pandas as pd
 
+from triage.process import process_gone
 from triage.risk.score import tier_index
+from triage.safety import NAME_LIMIT, TEXT_LIMIT, cell, name, uncell
 
 TICKET_COLUMNS = [
     "key", "state", "first_flagged", "last_seen", "severity", "category", "host", "slot", "group", "model",
@@ -37,26 +39,14 @@ TICKET_COLUMNS = [
 ]
 STATES = ("new", "ongoing", "not-reporting", "cleared")
 OPEN_STATES = ("new", "ongoing", "not-reporting")
-_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+#: Identifier columns are cut shorter than free text (see triage.safety).
+_NAME_COLUMNS = frozenset({"host", "slot", "group", "model", "serial"})
 
 
 def ticket_key(serial: str, reason: str | None) -> str:
     """Stable 12-hex-digit key: SHA-256 of 'serial|reason' (same drive, same reason, same key)."""
     text = f"{serial}|{reason or ''}"
     return hashlib.sha256(text.encode("utf-8")).hexdigest()[:12]
-
-
-def neutralise(cell: object) -> str:
-    """A cell safe to open in a spreadsheet: a leading ' before = + - @ TAB CR (OWASP)."""
-    text = "" if cell is None or (isinstance(cell, float) and pd.isna(cell)) else str(cell)
-    return "'" + text if text.startswith(_FORMULA_START) else text
-
-
-def restore(cell: str) -> str:
-    """Undo ``neutralise`` when reading our own export back."""
-    if len(cell) >= 2 and cell[0] == "'" and cell[1] in "=+-@\t\r":
-        return cell[1:]
-    return cell
 
 
 @dataclass(frozen=True)
@@ -86,7 +76,7 @@ def current_tickets(drives: pd.DataFrame, as_of: datetime | None = None) -> pd.D
     day = _day(as_of)
     rows = []
     for d in flagged.itertuples(index=False):
-        where = f"{d.host or '?'}/{d.slot or '?'}"
+        where = f"{name(d.host or '?')}/{name(d.slot or '?')}"  # each part cut on its own
         rows.append({
             "key": drive_key(d),
             "state": "new",
@@ -96,7 +86,7 @@ def current_tickets(drives: pd.DataFrame, as_of: datetime | None = None) -> pd.D
             "category": d.category or "",
             "host": d.host or "", "slot": d.slot or "", "group": d.group or "",
             "model": d.model or "", "serial": d.serial,
-            "summary": f"{d.severity}: {d.model or 'drive'} {d.serial} at {where}",
+            "summary": f"{d.severity}: {name(d.model or 'drive')} {name(d.serial)} at {where}",
             "evidence": "; ".join(d.evidence),
             "action": d.action,
             "score": f"{d.score:.3f}",
@@ -116,7 +106,7 @@ def read_tickets(path: Path) -> pd.DataFrame:
         missing = {"key", "state"} - set(reader.fieldnames or [])
         if missing:
             raise ValueError(f"{path}: line 1: not a triage ticket export (no column {', '.join(sorted(missing))})")
-        rows = [{k: restore(v or "") for k, v in row.items() if k in TICKET_COLUMNS} for row in reader]
+        rows = [{k: uncell(v or "") for k, v in row.items() if k in TICKET_COLUMNS} for row in reader]
     return pd.DataFrame(rows, columns=TICKET_COLUMNS).fillna("")
 
 
@@ -191,8 +181,9 @@ def to_csv_text(tickets: pd.DataFrame) -> str:
     buffer = io.StringIO()
     writer = csv.writer(buffer, quoting=csv.QUOTE_MINIMAL, lineterminator="\r\n")
     writer.writerow(TICKET_COLUMNS)
+    limits = [NAME_LIMIT if c in _NAME_COLUMNS else TEXT_LIMIT for c in TICKET_COLUMNS]
     for row in tickets[TICKET_COLUMNS].itertuples(index=False):
-        writer.writerow([neutralise(cell) for cell in row])
+        writer.writerow([cell(value, limit) for value, limit in zip(row, limits)])
     return buffer.getvalue()
 
 
@@ -200,6 +191,10 @@ def atomic_write_text(path: Path, text: str) -> None:
     """Write atomically: a temporary file in the same folder, flushed, then renamed over ``path``."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
+    for stale in path.parent.glob(f".{path.name}.*.tmp"):  # left by a killed run
+        owner = stale.name[len(path.name) + 2:-len(".tmp")]
+        if owner.isdigit() and process_gone(int(owner)):
+            stale.unlink(missing_ok=True)
     temp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
     with temp.open("w", newline="", encoding="utf-8") as fh:
         fh.write(text)

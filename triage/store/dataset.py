@@ -11,17 +11,31 @@ Layout (a public contract; other engines read the tables directly)::
     <root>/_format.json                                     the layout's version (schema.STORE_FORMAT)
     <root>/_lock                                            held while a writer runs
 
-How a commit stays atomic: every Parquet file is written under a dot-name (which readers
-skip), flushed to disk, then renamed into place; the manifest line that records the batch and
-its source files is appended last. A crash leaves only whole files visible. Rerunning the same
-input completes the batch: the source files are not in the manifest yet, so they are read again,
-and rows whose key is already stored (``schema.TABLES``) are dropped before writing.
+How a commit stays atomic: every Parquet file is written under a dot-name, flushed to disk,
+then renamed into place; the manifest line that records the batch and its source files is
+appended last, and that line is the commit. Readers open only ``part-<batch>.parquet`` files
+whose batch is in the manifest, so they see whole commits or nothing of one. A crash leaves
+files of an unrecorded batch behind; the next commit (under the writer lock) deletes them and
+any ``.part-*.tmp`` file. Rerunning the same input completes the batch: the source files are not
+in the manifest yet, so they are read again, and rows whose key is already stored
+(``schema.TABLES``) are dropped before writing.
 
 How an older store is brought up to date: the first ``read`` or ``commit`` that finds an older
 ``_format.json`` (or none beside existing tables: format 1) takes the writer lock and rewrites
 each Parquet file that still has old column names (``schema.RENAMED_SINCE``) with the new names,
 each file atomically as above; ``_format.json`` is replaced last. Values are copied untouched.
 A crash part-way leaves the old format recorded, and the next run converts the files left.
+
+The writer lock is a POSIX record lock (``fcntl.lockf``) on ``_lock``: the kernel drops it when
+its holder dies, however it dies, and a forked child (a pool worker) never inherits it -- so a
+killed run cannot leave the store locked, and its orphaned workers cannot hold it. The file
+records the holder's pid for the refusal message. Within one process a second ``lock()`` of the
+same file is refused too (POSIX locks alone would grant it).
+
+Dates: nothing stored may make a reader fail. Day partitions whose name is not a date between
+``EARLIEST_DAY`` and the clock's day after ``FUTURE_TOLERANCE`` (e.g. ``day=10000-01-01`` or a
+capture dated 2300, stored by an older triage) are left out of ``days`` and ``read``, and so are
+rows timed outside that window: every report is "as of" the newest capture not in the future.
 """
 
 from __future__ import annotations
@@ -31,12 +45,13 @@ import fcntl
 import json
 import os
 import secrets
+import threading
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass
-from datetime import datetime, timedelta, timezone
+from datetime import date, datetime, timedelta, timezone
 from pathlib import Path
-from typing import Iterable, Iterator, Mapping, Sequence
+from typing import Callable, Iterable, Iterator, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
@@ -50,7 +65,18 @@ from triage.store.schema import PARTITION_COLUMN, RENAMED_SINCE, STORE_FORMAT, T
 MANIFEST = "_manifest.jsonl"
 FORMAT_FILE = "_format.json"
 LOCK = "_lock"
-PARTITIONING = ds.partitioning(pa.schema([(PARTITION_COLUMN, pa.string())]), flavor="hive")
+#: Oldest day a reader accepts: before any capture this tool could have taken (ATA SMART came
+#: in the mid 1990s; common practice, no source), and well inside what pandas can hold.
+EARLIEST_DAY = date(2000, 1, 1)
+#: How far past the reading machine's clock a capture may be dated and still count (host clocks
+#: drift; common practice, no source). Later captures are not "now": reports ignore them.
+FUTURE_TOLERANCE = timedelta(hours=1)
+_PART_PREFIX, _PART_SUFFIX = "part-", ".parquet"
+
+#: Lock files this process holds (POSIX locks would let a process take its own lock twice).
+_HELD: set[str] = set()
+_HELD_GUARD = threading.Lock()
+os.register_at_fork(after_in_child=_HELD.clear)  # a forked child holds none of its parent's locks
 
 
 class StoreLocked(RuntimeError):
@@ -63,6 +89,10 @@ class StoreFormatError(RuntimeError):
 
 class StoreMissing(FileNotFoundError):
     """The store named does not exist: a typo in --store must not read as an empty, healthy fleet."""
+
+
+def _utc_now() -> datetime:
+    return datetime.now(timezone.utc)
 
 
 @dataclass(frozen=True)
@@ -83,9 +113,12 @@ def new_batch_id(now: datetime | None = None) -> str:
 
 
 class Store:
-    def __init__(self, root: Path | str):
+    """A store directory. ``now`` is the clock the date checks use (tests and demos set it)."""
+
+    def __init__(self, root: Path | str, now: Callable[[], datetime] = _utc_now):
         self.root = Path(root)
-        self._holding_lock = False
+        self.now = now
+        self._committed: tuple[tuple[int, int], frozenset[str]] | None = None
         self._format_current = False
 
     @classmethod
@@ -119,24 +152,48 @@ class Store:
     # -- locking --------------------------------------------------------------------------
     @contextmanager
     def lock(self, name: str = LOCK) -> Iterator[None]:
-        """Hold an exclusive, non-blocking lock file; raise StoreLocked if another holds it."""
+        """Hold an exclusive, non-blocking lock file; raise StoreLocked if another holds it.
+
+        A POSIX record lock (see module docstring): released by the kernel when this process
+        dies, never inherited by its children.
+        """
         self.root.mkdir(parents=True, exist_ok=True)
-        fd = os.open(self.root / name, os.O_RDWR | os.O_CREAT, 0o644)
+        path = self.root / name
+        with _HELD_GUARD:
+            if str(path) in _HELD:
+                raise StoreLocked(f"{path} is held by another triage run in this process (pid {os.getpid()})")
+            _HELD.add(str(path))
         try:
+            fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
             try:
-                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            except OSError as exc:
-                if exc.errno in (errno.EAGAIN, errno.EACCES):
-                    raise StoreLocked(f"{self.root / name} is held by another triage run") from None
-                raise
-            os.ftruncate(fd, 0)
-            os.write(fd, f"{os.getpid()}\n".encode())
-            self._holding_lock = name == LOCK
-            yield
+                try:
+                    fcntl.lockf(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                except OSError as exc:
+                    if exc.errno in (errno.EAGAIN, errno.EACCES):
+                        raise StoreLocked(f"{path} is held by another triage run{_holder(fd)}") from None
+                    raise
+                os.ftruncate(fd, 0)
+                os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
+                yield
+            finally:
+                os.close(fd)  # closing releases the lock
         finally:
-            if name == LOCK:
-                self._holding_lock = False
-            os.close(fd)  # closing releases the flock
+            with _HELD_GUARD:
+                _HELD.discard(str(path))
+
+    def holds_lock(self, name: str = LOCK) -> bool:
+        """True when this process holds the lock ``name`` of this store."""
+        with _HELD_GUARD:
+            return str(self.root / name) in _HELD
+
+    @contextmanager
+    def _writing(self) -> Iterator[None]:
+        """The writer lock for one commit, unless this process already holds it (ingest does)."""
+        if self.holds_lock():
+            yield
+        else:
+            with self.lock():
+                yield
 
     # -- format ---------------------------------------------------------------------------
     def format_version(self) -> int | None:
@@ -167,7 +224,7 @@ class Store:
             raise StoreFormatError(f"{self.root}: store format {version} is newer than this triage reads "
                                    f"({STORE_FORMAT}); upgrade triage")
         if version is not None and version < STORE_FORMAT:
-            if self._holding_lock:
+            if self.holds_lock():
                 self._convert(version)
             else:
                 with self.lock():
@@ -205,6 +262,18 @@ class Store:
                 continue
         return entries
 
+    def committed_batches(self) -> frozenset[str]:
+        """Batch ids the manifest records (cached until the manifest file changes)."""
+        try:
+            info = (self.root / MANIFEST).stat()
+        except FileNotFoundError:
+            return frozenset()
+        stamp = (info.st_size, info.st_mtime_ns)
+        if self._committed is None or self._committed[0] != stamp:
+            self._committed = (stamp, frozenset(e["batch"] for e in self.manifest()
+                                                if isinstance(e, dict) and isinstance(e.get("batch"), str)))
+        return self._committed[1]
+
     def ingested_digests(self) -> set[str]:
         return {f["sha256"] for entry in self.manifest() for f in entry.get("files", [])}
 
@@ -232,28 +301,58 @@ class Store:
         quarantine: Iterable[Mapping] = (),
         batch: str | None = None,
     ) -> dict[str, int]:
-        """Write a batch atomically (see module docstring); returns new rows per table."""
+        """Write a batch atomically (see module docstring); returns new rows per table.
+
+        Takes the writer lock unless this process holds it, and first removes what killed
+        commits left behind (``sweep``).
+        """
         batch = batch or new_batch_id()
         self.root.mkdir(parents=True, exist_ok=True)
-        self.upgrade()
-        if self.format_version() is None:
-            self._write_format()
-        written = {}
-        for table, frame in frames.items():
-            written[table] = self._write_table(table, frame, batch)
-        rejected = list(quarantine)
-        if rejected:
-            self._write_quarantine(rejected, batch)
-        self._append_manifest(
-            {
-                "batch": batch,
-                "committed_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-                "files": [s.__dict__ for s in sources],
-                "rows": written,
-                "quarantined": len(rejected),
-            }
-        )
+        with self._writing():
+            self.upgrade()
+            if self.format_version() is None:
+                self._write_format()
+            self.sweep()
+            written = {}
+            for table, frame in frames.items():
+                written[table] = self._write_table(table, frame, batch)
+            rejected = list(quarantine)
+            if rejected:
+                self._write_quarantine(rejected, batch)
+            self._append_manifest(
+                {
+                    "batch": batch,
+                    "committed_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+                    "files": [s.__dict__ for s in sources],
+                    "rows": written,
+                    "quarantined": len(rejected),
+                }
+            )
         return written
+
+    def sweep(self) -> int:
+        """Delete temporary files and parts of batches the manifest never recorded (a killed
+        commit's leftovers); call only under the writer lock. Returns the files removed."""
+        committed = self.committed_batches()
+        removed = 0
+        for table in TABLES:
+            root = self.table_dir(table)
+            if not root.is_dir():
+                continue
+            for day_dir in root.iterdir():
+                if not day_dir.is_dir():
+                    continue
+                for entry in os.listdir(day_dir):
+                    stray = entry.startswith(f".{_PART_PREFIX}") and entry.endswith(".tmp")
+                    batch = _batch_of(entry)
+                    if stray or (batch is not None and batch not in committed):
+                        (day_dir / entry).unlink(missing_ok=True)
+                        removed += 1
+        if self.quarantine_dir.is_dir():
+            for entry in self.quarantine_dir.glob(".*.jsonl.tmp"):
+                entry.unlink(missing_ok=True)
+                removed += 1
+        return removed
 
     def _write_table(self, table: str, frame: pd.DataFrame | pa.Table, batch: str) -> int:
         schema, time_column, key = TABLES[table]
@@ -289,8 +388,7 @@ class Store:
 
     def _drop_stored(self, table: str, day: str, rows: pa.Table, key) -> pa.Table:
         """``rows`` without those whose key is already stored in that day's partition."""
-        part_dir = self.table_dir(table) / f"{PARTITION_COLUMN}={day}"
-        files = sorted(part_dir.glob("part-*.parquet")) if part_dir.is_dir() else []
+        files = self._committed_parts(table, day)
         if not files:
             return rows
         stored = ds.dataset(files, schema=_schema_of(table), format="parquet").to_table(columns=list(key))
@@ -331,35 +429,40 @@ class Store:
         unknown = [c for c in wanted if c not in schema.names]
         if unknown:
             raise KeyError(f"{table} has no column(s) {', '.join(unknown)}")
-        root = self.table_dir(table)
-        if not root.is_dir():
-            return schema.empty_table().select(wanted).to_pandas()
-        full = schema.append(pa.field(PARTITION_COLUMN, pa.string()))
-        dataset = ds.dataset(root, schema=full, format="parquet", partitioning=PARTITIONING)
-        condition = None
-        day = ds.field(PARTITION_COLUMN)
-        stamp = ds.field(time_column)
+        empty = schema.empty_table().select(wanted).to_pandas()
+        first, last = self._sane_window()
+        low, high = first, last
         if since is not None:
-            since = _utc(since)
-            condition = (day >= since.strftime("%Y-%m-%d")) & (stamp >= pa.scalar(since, schema.field(time_column).type))
+            low = max(low, _utc(since))
         if until is not None:
-            until = _utc(until)
-            upper = (day <= until.strftime("%Y-%m-%d")) & (stamp < pa.scalar(until, schema.field(time_column).type))
-            condition = upper if condition is None else condition & upper
+            high = min(high, _utc(until) - timedelta(microseconds=1))
+        if low > high:
+            return empty
+        low_day, high_day = low.date().isoformat(), high.date().isoformat()
+        files = [f for day in self._day_names(table) if low_day <= day <= high_day
+                 for f in self._committed_parts(table, day)]
+        if not files:
+            return empty
+        stamp = ds.field(time_column)
+        kind = schema.field(time_column).type
+        condition = (stamp >= pa.scalar(low, kind)) & (stamp <= pa.scalar(high, kind))
         if serials is not None:
-            chosen = ds.field("serial").isin(pa.array(list(serials), pa.string()))
-            condition = chosen if condition is None else condition & chosen
+            condition = condition & ds.field("serial").isin(pa.array(list(serials), pa.string()))
+        dataset = ds.dataset([str(f) for f in files], schema=schema, format="parquet")
         return dataset.to_table(columns=wanted, filter=condition).to_pandas()
 
     def last_times(self, table: str, key: str) -> pd.DataFrame:
-        """The newest time of every ``key`` value over the table's whole history (two columns read)."""
+        """The newest time of every ``key`` value over the table's whole history (two columns read;
+        whole commits and the sane date window only, as ``read``)."""
         schema, time_column, _ = TABLES[table]
-        root = self.table_dir(table)
-        if not root.is_dir():
+        self.upgrade()
+        low, high = self._sane_window()
+        files = [f for day in self._day_names(table) for f in self._committed_parts(table, day)]
+        if not files:
             return schema.empty_table().select([key, time_column]).to_pandas()
-        full = schema.append(pa.field(PARTITION_COLUMN, pa.string()))
-        rows = ds.dataset(root, schema=full, format="parquet", partitioning=PARTITIONING).to_table(
-            columns=[key, time_column])
+        stamp, kind = ds.field(time_column), schema.field(time_column).type
+        rows = ds.dataset([str(f) for f in files], schema=schema, format="parquet").to_table(
+            columns=[key, time_column], filter=(stamp >= pa.scalar(low, kind)) & (stamp <= pa.scalar(high, kind)))
         newest = rows.group_by(key).aggregate([(time_column, "max")])
         return newest.rename_columns([key, time_column]).to_pandas()
 
@@ -384,12 +487,60 @@ class Store:
         return rows.drop_duplicates(subset=[key], keep="last")[wanted].reset_index(drop=True)
 
     def days(self, table: str) -> list[str]:
-        """The day partitions present, oldest first."""
+        """The day partitions holding committed rows in the sane window, oldest first."""
+        return [day for day in self._day_names(table) if self._committed_parts(table, day)]
+
+    def odd_days(self, table: str) -> list[str]:
+        """Day partition names readers leave out: not a date, or outside the sane window."""
         root = self.table_dir(table)
         if not root.is_dir():
             return []
         prefix = f"{PARTITION_COLUMN}="
-        return sorted(p.name[len(prefix):] for p in root.iterdir() if p.name.startswith(prefix))
+        kept = set(self._day_names(table))
+        return sorted(e[len(prefix):] for e in os.listdir(root) if e.startswith(prefix) and e[len(prefix):] not in kept)
+
+    def _day_names(self, table: str) -> list[str]:
+        """Day partition names that are dates in the sane window, oldest first (one listing)."""
+        root = self.table_dir(table)
+        if not root.is_dir():
+            return []
+        prefix = f"{PARTITION_COLUMN}="
+        first, last = (moment.date() for moment in self._sane_window())
+        names = (entry[len(prefix):] for entry in os.listdir(root) if entry.startswith(prefix))
+        return sorted(name for name in names if (day := _day_of(name)) is not None and first <= day <= last
+                      and day.isoformat() == name)
+
+    def _sane_window(self) -> tuple[datetime, datetime]:
+        """(earliest, latest) moment a reader accepts: see the module docstring."""
+        return (datetime.combine(EARLIEST_DAY, datetime.min.time(), timezone.utc),
+                _utc(self.now()) + FUTURE_TOLERANCE)
+
+    def _committed_parts(self, table: str, day: str) -> list[Path]:
+        """The Parquet files of one day partition whose batch the manifest records."""
+        part_dir = self.table_dir(table) / f"{PARTITION_COLUMN}={day}"
+        try:
+            entries = os.listdir(part_dir)
+        except (FileNotFoundError, NotADirectoryError):
+            return []
+        committed = self.committed_batches()
+        return sorted(part_dir / e for e in entries if _batch_of(e) in committed)
+
+
+def _batch_of(file_name: str) -> str | None:
+    """The batch id in ``part-<batch>.parquet``; None for any other name."""
+    if file_name.startswith(_PART_PREFIX) and file_name.endswith(_PART_SUFFIX):
+        return file_name[len(_PART_PREFIX):-len(_PART_SUFFIX)]
+    return None
+
+
+def _day_of(text: str) -> date | None:
+    """A partition name's date, or None when it is not a plain YYYY-MM-DD date."""
+    if len(text) != 10:
+        return None
+    try:
+        return date.fromisoformat(text)
+    except ValueError:
+        return None
 
 
 def _rename_columns(path: Path, renames: Mapping[str, str]) -> None:
@@ -458,6 +609,15 @@ def _utc(moment: datetime) -> datetime:
     if moment.tzinfo is None:
         raise ValueError(f"timestamp {moment.isoformat()} has no UTC offset")
     return moment.astimezone(timezone.utc)
+
+
+def _holder(fd: int) -> str:
+    """`` (pid N)`` from a held lock file, for the refusal message; empty when unreadable."""
+    try:
+        pid = int(os.pread(fd, 32, 0).split()[0])
+    except (OSError, ValueError, IndexError):
+        return ""
+    return f" (pid {pid})"
 
 
 def _fsync_file(path: Path) -> None:

@@ -287,34 +287,61 @@ class FleetRiskModel:
 
     # -- persistence ----------------------------------------------------------------------
     def save(self, models_dir: Path | str) -> Path:
-        """Write the model under ``models_dir`` as ``fleet-risk-v<N>-<stamp>/``; returns that path."""
+        """Write the model under ``models_dir`` as ``fleet-risk-v<N>-<stamp>/``; returns that path.
+
+        Unique and atomic, so two fits at once never collide: the files go to a temporary folder
+        named for this process and a random token, which is then renamed to the next free
+        ``v<N>``. rename(2) refuses a target folder that already holds files, so when another
+        fit took that number first this one takes the next. Temporary folders of fits that were
+        killed (their process is gone) are removed here.
+        """
+        import errno  # noqa: PLC0415  (kept local: only this method changes in this module)
+        import secrets  # noqa: PLC0415
+
+        from triage.process import process_gone  # noqa: PLC0415
+
         self._check_fitted()
         models_dir = Path(models_dir)
         models_dir.mkdir(parents=True, exist_ok=True)
-        number = 1 + max((int(m.group(1)) for m in map(MODEL_DIR.match, os.listdir(models_dir)) if m), default=0)
-        stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
-        final = models_dir / f"fleet-risk-v{number}-{stamp}"
-        temp = models_dir / f".{final.name}.tmp"
-        if temp.exists():
-            shutil.rmtree(temp)
+        for stale in models_dir.glob(".fleet-risk-*.tmp"):  # .fleet-risk-<token>.<pid>.<token>.tmp
+            owner = stale.name.rsplit(".", 3)[-3] if stale.name.count(".") >= 4 else ""
+            if owner.isdigit() and process_gone(int(owner)):  # that fit was killed
+                shutil.rmtree(stale, ignore_errors=True)
+        temp = models_dir / f".fleet-risk-{secrets.token_hex(4)}.{os.getpid()}.{secrets.token_hex(4)}.tmp"
         temp.mkdir()
-        meta = {
-            "format": FORMAT,
-            "format_version": FORMAT_VERSION,
-            "triage_version": __version__,
-            "fitted_at": self.fitted_at_,
-            "config": self.config(),
-            "landmark": self.landmark_.to_dict(),
-            "holdout": self.holdout_,
-            "data_window": self.data_window_,
-        }
-        (temp / "model.json").write_text(json.dumps(meta, indent=2, sort_keys=True, allow_nan=True) + "\n",
-                                         encoding="utf-8")
-        self.cohort_table_.to_parquet(temp / "cohorts.parquet", index=False)
-        self.exclusions_.to_parquet(temp / "exclusions.parquet", index=False)
-        if self.calibration_ is not None:
-            self.calibration_.to_parquet(temp / "calibration.parquet", index=False)
-        os.replace(temp, final)
+        try:
+            meta = {
+                "format": FORMAT,
+                "format_version": FORMAT_VERSION,
+                "triage_version": __version__,
+                "fitted_at": self.fitted_at_,
+                "config": self.config(),
+                "landmark": self.landmark_.to_dict(),
+                "holdout": self.holdout_,
+                "data_window": self.data_window_,
+            }
+            (temp / "model.json").write_text(json.dumps(meta, indent=2, sort_keys=True, allow_nan=True) + "\n",
+                                             encoding="utf-8")
+            self.cohort_table_.to_parquet(temp / "cohorts.parquet", index=False)
+            self.exclusions_.to_parquet(temp / "exclusions.parquet", index=False)
+            if self.calibration_ is not None:
+                self.calibration_.to_parquet(temp / "calibration.parquet", index=False)
+            for written in temp.iterdir():  # on disk before the rename makes the model visible
+                with written.open("rb") as fh:
+                    os.fsync(fh.fileno())
+            while True:
+                taken = (int(m.group(1)) for m in map(MODEL_DIR.match, os.listdir(models_dir)) if m)
+                stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+                final = models_dir / f"fleet-risk-v{1 + max(taken, default=0)}-{stamp}"
+                try:
+                    os.rename(temp, final)
+                    break
+                except OSError as exc:
+                    if exc.errno not in (errno.ENOTEMPTY, errno.EEXIST):
+                        raise  # a full disk or a permission: the caller says it in one line
+        except BaseException:
+            shutil.rmtree(temp, ignore_errors=True)
+            raise
         self.path_ = final
         return final
 
