@@ -26,7 +26,8 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # the tests' harness
 
-from tests.store.crashes import check_store, open_ticket_keys, run, run_and_kill, store_rows, timed  # noqa: E402
+from tests.store.crashes import (  # noqa: E402
+    COMPLETED, check_store, open_ticket_keys, run, run_and_kill, seed_store, store_rows, timed)
 from triage.demo import FleetSpec, generate_fleet, write_captures  # noqa: E402
 
 COMMANDS = {
@@ -48,6 +49,8 @@ def trial(command: str, reference: Path, seconds: float, kills: int, rng: random
             shutil.copytree(reference / "captures", work / "captures")
             if command == "tickets":  # tickets reads a store that ingest filled
                 shutil.copytree(reference / "ingest" / "store", work / "store")
+            elif command == "nightly":  # nightly needs an existing store
+                shutil.copytree(reference / "seed", work / "store")
             killed = run_and_kill(args, work, rng.uniform(0.0, window), whole_group=bool(i % 2))
             counts["kills"] += 1
             counts["finished_first"] += killed.finished
@@ -60,7 +63,7 @@ def trial(command: str, reference: Path, seconds: float, kills: int, rng: random
                 counts["broken_store"] += 1
                 print(f"  {command}: after a kill at {killed.delay:.2f} s: {exc}", file=sys.stderr)
             finished = run(args, work)
-            same = finished.returncode in (0, 3, 4) and store_rows(work / "store") == store_rows(clean / "store")
+            same = finished.returncode in COMPLETED and store_rows(work / "store") == store_rows(clean / "store")
             if ticket_name:
                 same = same and open_ticket_keys(work / ticket_name) == open_ticket_keys(clean / ticket_name)
             counts["diverged"] += int(not same)
@@ -82,12 +85,15 @@ def main() -> None:
     try:
         write_captures(generate_fleet(FleetSpec(seed=options.seed, n_drives=options.drives, days=options.days)),
                        reference / "captures")
+        seed_store(reference, "captures", "seed")
         seconds = {}
         for command in COMMANDS:  # the clean runs: their stores and durations
             (reference / command).mkdir()
             shutil.copytree(reference / "captures", reference / command / "captures")
             if command == "tickets":
                 shutil.copytree(reference / "ingest" / "store", reference / command / "store")
+            elif command == "nightly":
+                shutil.copytree(reference / "seed", reference / command / "store")
             seconds[command] = timed(COMMANDS[command][0], reference / command)
         results = {}
         for command in COMMANDS:

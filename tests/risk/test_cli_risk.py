@@ -8,11 +8,13 @@ from __future__ import annotations
 
 import csv
 import json
+from datetime import timedelta
 
 import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
+import triage.store.dataset
 from tests.risk.standins import use_stand_ins
 from triage.cli import app
 from triage.exitcodes import Exit
@@ -130,12 +132,14 @@ def test_a_folder_that_is_not_a_store_is_an_error_too(tmp_path):
     assert result.exit_code == Exit.FAILURE and "not a triage store" in result.stderr
 
 
-def test_a_host_that_stopped_reporting_is_news_and_its_ticket_stays_open(store, tmp_path):
+def test_a_host_that_stopped_reporting_is_news_and_its_ticket_stays_open(store, tmp_path, monkeypatch):
     out = tmp_path / "tickets.csv"
     assert _run("tickets", "--out", str(out), "--store", str(store.root)).exit_code == Exit.NEW_FLAGS
     # three nights on, site birch reports and site ash (which holds the flagged drive) has been silent
     later = pd.Timestamp.now(tz="UTC").floor("h") + pd.Timedelta(days=3)
     store.append("snapshots", pd.DataFrame(_nights(["QZ-0101", "QZ-0102"], host="birch-r1-n01", last=later)))
+    # and the clock has moved on with them (captures dated ahead of the clock are not "now")
+    monkeypatch.setattr(triage.store.dataset, "_utc_now", lambda: later.to_pydatetime() + timedelta(hours=2))
     result = _run("rank", "--format", "json", "--tickets", str(out), "--store", str(store.root))
     assert result.exit_code == Exit.NOT_REPORTING, result.output
     report = json.loads(result.stdout)

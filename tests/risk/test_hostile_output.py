@@ -36,12 +36,13 @@ def _stand_in_evaluate(ruleset, history, now=None):
 def hostile_store(tmp_path, monkeypatch):
     use_stand_ins(monkeypatch, _stand_in_evaluate)
     rows = []
+    last = pd.Timestamp.now(tz="UTC").floor("h") - pd.Timedelta(hours=1)  # fresh: not stale
     for day in (1, 2, 3):
         members = ["QZ-1", "QZ-2", "QZ-3"] + (["QZ-GONE"] if day < 3 else [])  # QZ-GONE: group degraded
         for i, serial in enumerate(members):
             rows.append({"serial": serial, "model": "QH-HD8T-A", "host": f"{BIDI}{OSC_TITLE}",
                          "slot": LONG_SLOT if i == 0 else f"{CSI_CLEAR}{i}",
-                         "group": f"pool{OSC_TITLE}", "taken_at": pd.Timestamp(f"2026-11-{day:02d}T02:00Z"),
+                         "group": f"pool{OSC_TITLE}", "taken_at": last - pd.Timedelta(days=3 - day),
                          "power_on_hours": 9000 + 24 * day, "pending_sectors": day})
     store = Store(tmp_path / "store")
     store.append("snapshots", pd.DataFrame(rows))
@@ -136,5 +137,5 @@ def test_rejected_lines_and_file_names_on_stderr_are_escaped(tmp_path):
     bad.write_text('{"capture": 1, "host": "\\u001b]0;x\\u0007"}\n', encoding="utf-8")
     result = _run("ingest", str(bad), "--store", str(tmp_path / "store"))
     assert result.exit_code == 3, result.output
-    assert "rejected:" in result.stderr
+    assert "quarantined:" in result.stderr
     _assert_clean(result.stderr)

@@ -113,9 +113,9 @@ def new_batch_id(now: datetime | None = None) -> str:
 
 
 class Store:
-    """A store directory. ``now`` is the clock the date checks use (tests and demos set it)."""
+    """A store directory. ``now`` is the clock the date checks use (default: the machine's, UTC)."""
 
-    def __init__(self, root: Path | str, now: Callable[[], datetime] = _utc_now):
+    def __init__(self, root: Path | str, now: Callable[[], datetime] | None = None):
         self.root = Path(root)
         self.now = now
         self._committed: tuple[tuple[int, int], frozenset[str]] | None = None
@@ -513,7 +513,7 @@ class Store:
     def _sane_window(self) -> tuple[datetime, datetime]:
         """(earliest, latest) moment a reader accepts: see the module docstring."""
         return (datetime.combine(EARLIEST_DAY, datetime.min.time(), timezone.utc),
-                _utc(self.now()) + FUTURE_TOLERANCE)
+                _utc((self.now or _utc_now)()) + FUTURE_TOLERANCE)
 
     def _committed_parts(self, table: str, day: str) -> list[Path]:
         """The Parquet files of one day partition whose batch the manifest records."""
