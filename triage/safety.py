@@ -56,11 +56,14 @@ def _text_of(value: object) -> str:
     return value if isinstance(value, str) else str(value)
 
 
-def visible(value: object, limit: int | None = TEXT_LIMIT) -> str:
-    """``value`` as printable text: control and invisible characters escaped, cut at ``limit``."""
+def visible(value: object, limit: int | None = TEXT_LIMIT, keep: str = "") -> str:
+    """``value`` as printable text: control and invisible characters escaped, cut at ``limit``.
+
+    Characters in ``keep`` pass through (a format with its own escape for them, e.g. line feed).
+    """
     text = _text_of(value)
     if not (text.isascii() and text.isprintable()):
-        text = "".join(_escape_char(ch) for ch in text)
+        text = "".join(ch if ch in keep else _escape_char(ch) for ch in text)
     if limit is not None and len(text) > limit:
         # the marker counts in the limit (fewer hidden characters never need more digits)
         keep = max(limit - len(CUT_MARK.format(hidden=len(text))), 1)
