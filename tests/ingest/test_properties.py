@@ -11,7 +11,7 @@ from pathlib import Path
 from unittest import mock
 
 import pandas as pd
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 from tests.ingest.lines import ata_line, nvme_line
@@ -48,6 +48,7 @@ def as_plain(items):
 
 @SETTINGS
 @given(CONTENT, st.booleans(), st.integers(1, 9), st.integers(3, 12))
+@example(b"\r\r\r\r", False, 1, 3)  # white space longer than the line limit is still a blank line
 def test_the_reader_gives_the_lines_split_gives_whatever_the_block_size(data, compress, block, limit):
     path = write(data, compress)
     with mock.patch.object(reading, "BLOCK_BYTES", block), mock.patch.object(reading, "GZIP_STEP_BYTES", block), \

@@ -43,15 +43,17 @@ class FileStopped(Exception):
 
 @dataclass(frozen=True)
 class OversizeLine:
-    """A line over ``MAX_LINE_BYTES``: its length and first ``EXCERPT_BYTES`` bytes only."""
+    """A line over ``MAX_LINE_BYTES``: its length and first ``EXCERPT_BYTES`` bytes only, and
+    whether every byte of it so far was white space (then it is a blank line, however long)."""
 
     length: int
     head: bytes
+    blank: bool = False
 
     def extended(self, more: bytes) -> "OversizeLine":
         """The same line with ``more`` bytes after it (the head grows up to ``EXCERPT_BYTES``)."""
         head = self.head if len(self.head) >= EXCERPT_BYTES else (self.head + more[:EXCERPT_BYTES])[:EXCERPT_BYTES]
-        return OversizeLine(self.length + len(more), head)
+        return OversizeLine(self.length + len(more), head, self.blank and not more.strip())
 
 
 def is_gzip_name(path: Path) -> bool:
@@ -132,7 +134,11 @@ class CaptureLines:
                     continue
                 line, oversize = oversize, None
                 self.position += line.length + 1
-                yield self._number(), line
+                if line.blank:
+                    self.blank_lines += 1
+                    self.next_line += 1
+                else:
+                    yield self._number(), line
                 block = block[end + 1:]
             if not block.strip() and not carry.strip():
                 # only blank lines (a "bomb of newlines" is this): counted, not split
@@ -158,10 +164,14 @@ class CaptureLines:
                     else:
                         yield self._number(), line
             if len(carry) > MAX_LINE_BYTES:
-                oversize, carry = OversizeLine(len(carry), carry[:EXCERPT_BYTES]), b""
+                oversize, carry = OversizeLine(len(carry), carry[:EXCERPT_BYTES], not carry.strip()), b""
         if oversize is not None:
             self.position += oversize.length
-            yield self._number(), oversize
+            if oversize.blank:
+                self.blank_lines += 1
+                self.next_line += 1
+            else:
+                yield self._number(), oversize
         elif carry.strip():  # a last line without its newline is still a line
             self.position += len(carry)
             yield self._number(), carry
