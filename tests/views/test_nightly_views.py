@@ -6,6 +6,7 @@ import shutil
 
 from typer.testing import CliRunner
 
+from tests.views import omparse
 from triage.cli import app
 from triage.exitcodes import Exit
 
@@ -13,8 +14,6 @@ runner = CliRunner()
 
 
 def test_nightly_writes_the_openmetrics_file_and_the_page(fleet, tmp_path):
-    from prometheus_client.openmetrics.parser import text_string_to_metric_families
-
     store = tmp_path / "store"
     shutil.copytree(fleet["root"], store)  # nightly writes tickets state and locks: not the shared store
     (tmp_path / "dumps").mkdir()
@@ -22,7 +21,7 @@ def test_nightly_writes_the_openmetrics_file_and_the_page(fleet, tmp_path):
     result = runner.invoke(app, ["nightly", "--dumps", str(tmp_path / "dumps"), "--out", str(tmp_path / "t.csv"),
                                  "--openmetrics", str(om), "--html", str(page), "--store", str(store)])
     assert result.exit_code == Exit.NOT_REPORTING, result.output  # a host went quiet; the views are still written
-    names = {f.name for f in text_string_to_metric_families(om.read_text(encoding="utf-8"))}
+    names = {f.name for f in omparse.parse(om.read_text(encoding="utf-8"))}
     assert "triage_drive_failure_probability" in names
     assert page.read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
 

@@ -1,4 +1,5 @@
-"""``triage export --openmetrics``: checked with an independent OpenMetrics parser from PyPI."""
+"""``triage export --openmetrics``: checked with a strict reader written from the OpenMetrics 1.0
+specification (tests/views/omparse.py)."""
 
 from __future__ import annotations
 
@@ -9,13 +10,13 @@ import pytest
 from scipy.stats import chi2
 from typer.testing import CliRunner
 
+from tests.views import omparse
 from tests.views.conftest import HOSTILE, QUIET_HOST
 from triage.cli import app
 from triage.exitcodes import Exit
 from triage.report.openmetrics import escape_label_value
 from triage.report.safe import printable
 
-parser = pytest.importorskip("prometheus_client.openmetrics.parser")
 runner = CliRunner()
 
 
@@ -29,8 +30,8 @@ def exposition(fleet, tmp_path_factory):
     result = run("export", "--openmetrics", str(path), "--store", str(fleet["root"]))
     assert result.exit_code == Exit.OK, result.output
     text = path.read_text(encoding="utf-8")
-    # the parser raises on anything the OpenMetrics 1.0 text format does not allow
-    families = {f.name: f for f in parser.text_string_to_metric_families(text)}
+    # the reader raises on anything the OpenMetrics 1.0 text format does not allow
+    families = {f.name: f for f in omparse.parse(text)}
     return text, families
 
 
@@ -120,3 +121,17 @@ def test_the_degraded_group_is_marked(exposition, fleet):
     degraded = {s.labels["group"]: s.value for s in families["triage_group_degraded"].samples}
     assert degraded[fleet["degraded_group"]] == 1.0
     assert set(degraded.values()) == {0.0, 1.0}  # a gauge per group, healthy ones at 0
+
+
+@pytest.mark.parametrize("bad", [
+    "a 1\n",  # no '# EOF' (OpenMetrics 1.0: the exposition MUST end with it)
+    "# TYPE a gauge\na{x=\"1\",x=\"2\"} 1\n# EOF\n",  # a label repeated
+    "# TYPE a gauge\na{x=\"line\nbreak\"} 1\n# EOF\n",  # a raw line feed in a label value
+    "# TYPE a gauge\nb 1\n# EOF\n",  # a sample outside its family
+    "# TYPE a gauge\na 1\n\n# EOF\n",  # an empty line
+    "# TYPE a gauge\na 1\n# EOF\na 2\n",  # text after '# EOF'
+])
+def test_the_reader_refuses_what_the_specification_does_not_allow(bad):
+    # the check above means something only if the reader is strict: each of these breaks the ABNF
+    with pytest.raises(omparse.OpenMetricsError):
+        omparse.parse(bad)
