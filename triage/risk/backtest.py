@@ -100,7 +100,8 @@ def backtest_store(store, ruleset, horizon_days: float = 30, max_false_alarm: fl
                    progress: Callable[[int, int], None] | None = None) -> BacktestResult:
     """Replay ``store`` night by night and score every method (module docstring)."""
     from triage.survival.landmark import (  # noqa: PLC0415  (survival layer, to our left)
-        STATE_SOURCES, STEP_DAYS, FitError, LandmarkModel, StateTracker, utc, utc_times, window_outcomes)
+        STATE_SOURCES, FitError, LandmarkModel, StateTracker, landmark_dates, stored_span, utc, utc_times,
+        window_outcomes)
     from triage.survival.model import clean_removals, event_reasons  # noqa: PLC0415
     from triage.survival.observations import cohort_labels  # noqa: PLC0415
 
@@ -113,13 +114,11 @@ def backtest_store(store, ruleset, horizon_days: float = 30, max_false_alarm: fl
     if refit_days < 1:
         raise BacktestError(f"--refit-days must be at least 1, got {refit_days}")
     H = float(horizon_days)
-    days = store.days("snapshots")
-    if not days:
+    span = stored_span(store)
+    if span is None:
         raise BacktestError(f"{store.root}: no snapshots stored (run 'triage ingest' first, or check --store)")
-    data_first = pd.Timestamp(days[0], tz="UTC")
-    last_day = pd.Timestamp(days[-1], tz="UTC")
-    newest = store.read("snapshots", columns=["taken_at"], since=last_day.to_pydatetime())
-    data_end = pd.to_datetime(newest["taken_at"], utc=True).max()
+    data_first, data_end = span
+    last_day = data_end.normalize()
     # the tool's training period: one horizon and never less than four weeks -- the first fit
     # has weekly landmarks over that time, their windows cut at the night (partial windows count
     # as exposure: section 1 of docs/prediction.md)
@@ -128,15 +127,15 @@ def backtest_store(store, ruleset, horizon_days: float = 30, max_false_alarm: fl
     default_last = (data_end - pd.Timedelta(days=H)).normalize() - pd.Timedelta(days=1)
     first = default_first if first_night is None else utc(first_night).normalize()
     last = min(default_last, last_day) if last_night is None else utc(last_night).normalize()
-    span = f"{data_first:%Y-%m-%d} to {last_day:%Y-%m-%d}"
+    stored = f"{data_first:%Y-%m-%d} to {last_day:%Y-%m-%d}"
     for name, night in (("--from", first_night), ("--to", last_night)):
         if night is not None and not data_first <= utc(night).normalize() <= last_day:
-            raise BacktestError(f"{name} {utc(night):%Y-%m-%d} is outside the stored history ({span})")
+            raise BacktestError(f"{name} {utc(night):%Y-%m-%d} is outside the stored history ({stored})")
     if first_night is not None and first < data_first + pd.Timedelta(days=14):
-        raise BacktestError(f"--from {first:%Y-%m-%d} leaves under two weeks to train on (history starts {days[0]})")
+        raise BacktestError(f"--from {first:%Y-%m-%d} leaves under two weeks to train on (history starts {data_first:%Y-%m-%d})")
     if last < first:
         raise BacktestError(
-            f"the history ({span}) is too short to backtest a {H:g}-day horizon: it needs {training_days} "
+            f"the history ({stored}) is too short to backtest a {H:g}-day horizon: it needs {training_days} "
             f"days to train, then nights with {H:g} days of data after them")
 
     removals = clean_removals(store.read("removals", columns=["serial", "removed_at", "reason"]))
@@ -176,6 +175,7 @@ def backtest_store(store, ruleset, horizon_days: float = 30, max_false_alarm: fl
     landmark_frames: list[pd.DataFrame] = []
     model, last_fit = None, None
     nights = pd.date_range(data_first, last, freq="D")
+    landmarks = set(landmark_dates(data_first, last + pd.Timedelta(days=1)))
     week: pd.DataFrame | None = None
     for k, day in enumerate(nights):
         if progress:
@@ -191,12 +191,13 @@ def backtest_store(store, ruleset, horizon_days: float = 30, max_false_alarm: fl
         window.append((day, frame))
         while window and window[0][0] < moment - pd.Timedelta(days=lookback + 1):
             window.popleft()
-        if (moment - data_first) >= pd.Timedelta(days=STEP_DAYS) and (moment - data_first).days % STEP_DAYS == 0:
-            state = tracker.state_at(moment, known_removals)
-            if len(state):
-                landmark_frames.append(state.assign(landmark=moment))
+        scored = day >= first
+        # the drives in service tonight: a landmark row for later fits and/or tonight's scores
+        state = tracker.state_at(moment, known_removals) if scored or moment in landmarks else None
+        if moment in landmarks and len(state):
+            landmark_frames.append(state.assign(landmark=moment))
         tracker.mark(moment)
-        if day < first:
+        if not scored:
             continue
 
         if last_fit is None or (moment - last_fit) >= pd.Timedelta(days=refit_days):
@@ -216,7 +217,6 @@ def backtest_store(store, ruleset, horizon_days: float = 30, max_false_alarm: fl
         else:
             forecast_origin = False
 
-        state = tracker.state_at(moment, known_removals)
         if state.empty:
             continue
         serials = state["serial"].to_numpy(dtype=object)

@@ -104,7 +104,7 @@ def forecast_store(store, days: float = 90, as_of=None, by: Sequence[str] = ("mo
                    progress: Callable[[int, int], None] | None = None) -> Forecast:
     """Forecast failures in the ``days`` after ``as_of`` (default: the newest capture) per cohort,
     site and fleet, from data known at ``as_of`` only."""
-    from triage.survival.landmark import FitError, store_reader, utc  # noqa: PLC0415  (survival, to our left)
+    from triage.survival.landmark import FitError, store_reader, stored_span, utc  # noqa: PLC0415  (survival, to our left)
     from triage.survival.model import fit_until  # noqa: PLC0415
     from triage.survival.observations import cohort_labels  # noqa: PLC0415
 
@@ -112,12 +112,10 @@ def forecast_store(store, days: float = 90, as_of=None, by: Sequence[str] = ("mo
         raise ForecastError(f"--days must be positive, got {days}")
     if not 0 < service_level < 1:
         raise ForecastError(f"--service-level must lie strictly between 0 and 1, got {service_level}")
-    stored = store.days("snapshots")
-    if not stored:
+    span = stored_span(store)
+    if span is None:
         raise ForecastError(f"{store.root}: no snapshots stored (run 'triage ingest' first, or check --store)")
-    first = pd.Timestamp(stored[0], tz="UTC")
-    newest = store.read("snapshots", columns=["taken_at"], since=pd.Timestamp(stored[-1], tz="UTC").to_pydatetime())
-    last = pd.to_datetime(newest["taken_at"], utc=True).max()
+    first, last = span
     moment = last if as_of is None else utc(as_of)
     if moment < first + pd.Timedelta(days=14) or moment > last + pd.Timedelta(days=1):
         raise ForecastError(f"--as-of {moment:%Y-%m-%d %H:%M} is outside the stored history "

@@ -123,6 +123,11 @@ def _last_per_serial(frame: pd.DataFrame) -> pd.DataFrame:
     return frame.sort_values("taken_at", kind="stable").drop_duplicates("serial", keep="last")
 
 
+def _first_per_serial(frame: pd.DataFrame) -> pd.DataFrame:
+    frame = frame[frame["serial"].notna()]
+    return frame.sort_values("taken_at", kind="stable").drop_duplicates("serial", keep="first")
+
+
 class StateTracker:
     """Each drive's latest capture and the captures ``GROWTH_DAYS`` back, fed in time order.
 
@@ -148,7 +153,7 @@ class StateTracker:
         else:
             merged = pd.concat([self.latest, last], ignore_index=True)
             self.latest = merged.drop_duplicates("serial", keep="last").reset_index(drop=True)
-        head = chunk[chunk["serial"].notna()].sort_values("taken_at", kind="stable").drop_duplicates("serial")
+        head = _first_per_serial(chunk)
         if self.first is None:
             self.first = head.reset_index(drop=True)
         else:
@@ -190,8 +195,7 @@ def states_from_history(history: pd.DataFrame, moment, removals: pd.DataFrame | 
     recent = history if active_days is None else history[(taken > moment - pd.Timedelta(days=active_days)).to_numpy()]
     latest = _drop_removed(_last_per_serial(recent), removals, moment)
     base = _last_per_serial(history[(taken <= moment - pd.Timedelta(days=GROWTH_DAYS)).to_numpy()])
-    first = history[history["serial"].notna()].sort_values("taken_at", kind="stable").drop_duplicates("serial")
-    return state_features(latest, moment, base, first)
+    return state_features(latest, moment, base, _first_per_serial(history))
 
 
 def _drop_removed(latest: pd.DataFrame, removals: pd.DataFrame | None, moment: pd.Timestamp) -> pd.DataFrame:
@@ -347,6 +351,16 @@ def store_reader(store) -> Callable:
                           until=None if until is None else utc(until).to_pydatetime())
 
     return read
+
+
+def stored_span(store) -> tuple[pd.Timestamp, pd.Timestamp] | None:
+    """(first stored day at UTC midnight, newest capture time) of a store's snapshots; None when
+    none are stored. Only the newest day is read."""
+    days = store.days("snapshots")
+    if not days:
+        return None
+    newest = store.read("snapshots", columns=["taken_at"], since=pd.Timestamp(days[-1], tz="UTC").to_pydatetime())
+    return pd.Timestamp(days[0], tz="UTC"), utc_times(newest["taken_at"]).max()
 
 
 def window_outcomes(states: pd.DataFrame, removals: pd.DataFrame, horizon_days: float,
