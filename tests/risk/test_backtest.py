@@ -176,3 +176,12 @@ def test_forecast_command_json_rows_add_up(store):
     assert sum(r["drives"] for r in cohorts) == fleet["drives"]
     assert sum(r["expected"] for r in cohorts) == pytest.approx(fleet["expected"])
     assert np.isfinite(fleet["expected"])
+
+
+@pytest.mark.parametrize("command", ["backtest", "forecast"])
+def test_a_store_without_captures_is_a_failure_not_a_usage_error(tmp_path, command):
+    empty = Store(tmp_path / "store")
+    empty.append("removals", pd.DataFrame({"serial": ["X"], "removed_at": [T0], "reason": ["failed"], "note": [None]}))
+    outcome = runner.invoke(app, [command, "--store", str(empty.root)])
+    assert outcome.exit_code == Exit.FAILURE  # the same code as 'triage fit' on such a store
+    assert "no snapshots stored" in outcome.output

@@ -42,7 +42,7 @@ def backtest(
     verdict and the combined score have flagged the drives that failed, and how many healthy ones?"""
     from triage.report.console import progress_bar
     from triage.report.predict import plot_backtest, render_backtest
-    from triage.risk.backtest import BacktestError, backtest_store
+    from triage.risk.backtest import BacktestError, BacktestOptionError, backtest_store
 
     if not 0 < max_false_alarm < 1:
         fail(f"--max-false-alarm must lie strictly between 0 and 1, got {max_false_alarm}", Exit.USAGE)
@@ -57,8 +57,10 @@ def backtest(
             result = backtest_store(target, ruleset, horizon_days=horizon_days, max_false_alarm=max_false_alarm,
                                     first_night=_night(first, "--from"), last_night=_night(last, "--to"),
                                     refit_days=refit_days, progress=update)
+    except BacktestOptionError as exc:
+        fail(str(exc), Exit.USAGE)
     except BacktestError as exc:
-        fail(str(exc), Exit.USAGE if ("--" in str(exc)) else Exit.FAILURE)
+        fail(str(exc), Exit.FAILURE)
     render_backtest(result, fmt)
     if plot is not None:
         plot_backtest(result, plot)
@@ -78,7 +80,7 @@ def forecast(
     prediction interval, and the spares to stock."""
     from triage.report.console import progress_bar
     from triage.report.predict import render_forecast
-    from triage.risk.forecast import ForecastError, forecast_store
+    from triage.risk.forecast import ForecastError, ForecastOptionError, forecast_store
     from triage.survival.observations import check_by
 
     if not 0 < service_level < 1:
@@ -95,6 +97,8 @@ def forecast(
         with progress_bar("reading drive states") as update:
             result = forecast_store(target, days=days, as_of=moment, by=keys, service_level=service_level,
                                     progress=update)
+    except ForecastOptionError as exc:
+        fail(str(exc), Exit.USAGE)
     except ForecastError as exc:
-        fail(str(exc), Exit.USAGE if ("--" in str(exc)) else Exit.FAILURE)
+        fail(str(exc), Exit.FAILURE)
     render_forecast(result, fmt)

@@ -57,7 +57,11 @@ _NS_PER_DAY = 86_400_000_000_000
 
 
 class BacktestError(ValueError):
-    """The backtest cannot run (history too short, no failure, a date outside the data)."""
+    """The backtest cannot run on this store (no captures, history too short, no failure)."""
+
+
+class BacktestOptionError(BacktestError):
+    """An option is out of range (a rate outside (0, 1), a night outside the stored history)."""
 
 
 @dataclass
@@ -108,11 +112,11 @@ def backtest_store(store, ruleset, horizon_days: float = 30, max_false_alarm: fl
     if evaluate is None:
         from triage.rules import evaluate  # noqa: PLC0415  (rules layer, to our left)
     if not 0 < max_false_alarm < 1:
-        raise BacktestError(f"--max-false-alarm must lie strictly between 0 and 1, got {max_false_alarm}")
+        raise BacktestOptionError(f"--max-false-alarm must lie strictly between 0 and 1, got {max_false_alarm}")
     if not horizon_days > 0:
-        raise BacktestError(f"--horizon-days must be positive, got {horizon_days}")
+        raise BacktestOptionError(f"--horizon-days must be positive, got {horizon_days}")
     if refit_days < 1:
-        raise BacktestError(f"--refit-days must be at least 1, got {refit_days}")
+        raise BacktestOptionError(f"--refit-days must be at least 1, got {refit_days}")
     H = float(horizon_days)
     span = stored_span(store)
     if span is None:
@@ -130,9 +134,9 @@ def backtest_store(store, ruleset, horizon_days: float = 30, max_false_alarm: fl
     stored = f"{data_first:%Y-%m-%d} to {last_day:%Y-%m-%d}"
     for name, night in (("--from", first_night), ("--to", last_night)):
         if night is not None and not data_first <= utc(night).normalize() <= last_day:
-            raise BacktestError(f"{name} {utc(night):%Y-%m-%d} is outside the stored history ({stored})")
+            raise BacktestOptionError(f"{name} {utc(night):%Y-%m-%d} is outside the stored history ({stored})")
     if first_night is not None and first < data_first + pd.Timedelta(days=14):
-        raise BacktestError(f"--from {first:%Y-%m-%d} leaves under two weeks to train on (history starts {data_first:%Y-%m-%d})")
+        raise BacktestOptionError(f"--from {first:%Y-%m-%d} leaves under two weeks to train on (history starts {data_first:%Y-%m-%d})")
     if last < first:
         raise BacktestError(
             f"the history ({stored}) is too short to backtest a {H:g}-day horizon: it needs {training_days} "
@@ -340,4 +344,4 @@ def _forecast_rows(day: pd.Timestamp, state: pd.DataFrame, p: np.ndarray, failed
     return rows
 
 
-__all__ = ["BacktestError", "BacktestResult", "METHOD_COLUMNS", "backtest_store"]
+__all__ = ["BacktestError", "BacktestOptionError", "BacktestResult", "METHOD_COLUMNS", "backtest_store"]

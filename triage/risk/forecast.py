@@ -96,7 +96,11 @@ class Forecast:
 
 
 class ForecastError(ValueError):
-    """The forecast cannot be made (empty store, no failure known, a date outside the data)."""
+    """The forecast cannot be made on this store (no captures, no failure known by the date)."""
+
+
+class ForecastOptionError(ForecastError):
+    """An option is out of range (days, service level, a date outside the stored history)."""
 
 
 def forecast_store(store, days: float = 90, as_of=None, by: Sequence[str] = ("model",),
@@ -109,16 +113,16 @@ def forecast_store(store, days: float = 90, as_of=None, by: Sequence[str] = ("mo
     from triage.survival.observations import cohort_labels  # noqa: PLC0415
 
     if not days > 0:
-        raise ForecastError(f"--days must be positive, got {days}")
+        raise ForecastOptionError(f"--days must be positive, got {days}")
     if not 0 < service_level < 1:
-        raise ForecastError(f"--service-level must lie strictly between 0 and 1, got {service_level}")
+        raise ForecastOptionError(f"--service-level must lie strictly between 0 and 1, got {service_level}")
     span = stored_span(store)
     if span is None:
         raise ForecastError(f"{store.root}: no snapshots stored (run 'triage ingest' first, or check --store)")
     first, last = span
     moment = last if as_of is None else utc(as_of)
     if moment < first + pd.Timedelta(days=14) or moment > last + pd.Timedelta(days=1):
-        raise ForecastError(f"--as-of {moment:%Y-%m-%d %H:%M} is outside the stored history "
+        raise ForecastOptionError(f"--as-of {moment:%Y-%m-%d %H:%M} is outside the stored history "
                             f"({first:%Y-%m-%d} to {last:%Y-%m-%d %H:%M}; the first two weeks only train)")
     removals = store.read("removals", columns=["serial", "removed_at", "reason"])
     try:
@@ -140,5 +144,5 @@ def forecast_store(store, days: float = 90, as_of=None, by: Sequence[str] = ("mo
                     service_level=service_level, drives=drives, notes=notes)
 
 
-__all__ = ["FORECAST_COLUMNS", "Forecast", "ForecastError", "forecast_store", "forecast_table",
+__all__ = ["FORECAST_COLUMNS", "Forecast", "ForecastError", "ForecastOptionError", "forecast_store", "forecast_table",
            "poisson_binomial_pmf", "pmf_quantile"]
