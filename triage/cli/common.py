@@ -63,6 +63,33 @@ StaleOption = typer.Option(
          "call drives silent this long against the newest capture 'not reporting').")
 
 
+class EngineChoice(str, Enum):
+    """``--engine`` of the commands whose map steps can run elsewhere (triage/engine.py)."""
+
+    local = "local"
+    dask = "dask"
+
+
+EngineOption = typer.Option(
+    None, "--engine", case_sensitive=False,
+    help="Where the map steps run: this machine's cores, or a Dask cluster (needs the 'dask' extra). "
+         "Default: dask when a scheduler is named, else local.")
+SchedulerOption = typer.Option(
+    None, "--scheduler", metavar="ADDRESS",
+    help="Dask scheduler address, e.g. tcp://10.0.0.5:8786 (default: $TRIAGE_SCHEDULER; with --engine dask "
+         "and neither, a cluster of local processes). Workers must see the store and inputs at the same paths.")
+
+
+def open_engine_options(engine: Optional[EngineChoice], scheduler: Optional[str]):
+    """The engine the options ask for, or one line and FAILURE (nothing has been written yet)."""
+    from triage.engine import EngineError, open_engine
+
+    try:
+        return open_engine(engine.value if engine else None, scheduler)
+    except EngineError as exc:
+        fail(str(exc), Exit.FAILURE)
+
+
 def _version(value: bool) -> None:
     if value:
         typer.echo(f"triage {__version__}")
