@@ -49,6 +49,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterable, Sequence
 
+import numpy as np
 import pandas as pd
 
 #: Single parity / two-way mirror: the most common layout, so the cautious default.
@@ -89,6 +90,23 @@ def prob_more_than(probabilities: Iterable[float], tolerance: int) -> float:
     return dist[tolerance + 1]
 
 
+def prob_more_than_each(probabilities: np.ndarray, tolerance: int) -> np.ndarray:
+    """``prob_more_than`` of each row of a (groups x members) matrix: the same recurrence, run
+    for all rows at once, member by member (so each row's result is the same, bit for bit)."""
+    if tolerance < 0:
+        return np.ones(len(probabilities))
+    dist = np.zeros((len(probabilities), tolerance + 2))
+    dist[:, 0] = 1.0
+    for p in np.asarray(probabilities, dtype=float).T:
+        q = 1.0 - p
+        over = dist[:, tolerance + 1] + dist[:, tolerance] * p
+        for k in range(tolerance, 0, -1):
+            dist[:, k] = dist[:, k] * q + dist[:, k - 1] * p
+        dist[:, 0] = dist[:, 0] * q
+        dist[:, tolerance + 1] = over
+    return dist[:, tolerance + 1]
+
+
 def window_probability(p_horizon: float, horizon_days: float, window_days: float) -> float:
     """p_w = 1 - (1 - p_H) ** (w / H): the horizon probability rescaled under a constant hazard."""
     if horizon_days <= 0:
@@ -101,6 +119,21 @@ def member_probability(p_window: float | None, severity: str | None) -> float:
     prior = SEVERITY_REBUILD_PRIOR.get(severity, 0.0)
     model = 0.0 if p_window is None or pd.isna(p_window) else float(p_window)
     return 1.0 - (1.0 - model) * (1.0 - prior)
+
+
+def member_probabilities(p_fail: pd.Series, severity: pd.Series, group: pd.Series, horizon_days: float | None,
+                         config: "GroupConfig") -> list[float]:
+    """``member_probability`` of many drives: each drive's ``p_fail`` over the horizon rescaled to
+    its group's rebuild window (``window_probability``; none without a model, a horizon or a
+    group), combined with its severity's prior. Same arithmetic as one drive at a time."""
+    rebuild_days = {g: config.for_group(g).rebuild_hours / 24.0 for g in pd.unique(group) if isinstance(g, str)}
+    out = []
+    for p, s, g in zip(p_fail.tolist(), severity.tolist(), group.tolist()):
+        p_window = None
+        if horizon_days and not pd.isna(p) and isinstance(g, str):
+            p_window = window_probability(p, horizon_days, rebuild_days[g])
+        out.append(member_probability(p_window, s))
+    return out
 
 
 # -- configuration ----------------------------------------------------------------------------
@@ -174,7 +207,7 @@ def lost_members(snapshots: pd.DataFrame, removals: pd.DataFrame) -> pd.DataFram
     Returns columns group, serial, host, slot, last_seen.
     """
     columns = ["group", "serial", "host", "slot", "last_seen"]
-    frame = snapshots.dropna(subset=["group"])
+    frame = snapshots.loc[snapshots["group"].notna(), ["group", "serial", "host", "slot", "taken_at"]]
     if frame.empty:
         return pd.DataFrame(columns=columns)
     frame = frame.assign(night=frame["taken_at"].dt.floor("D"))
@@ -189,14 +222,13 @@ def lost_members(snapshots: pd.DataFrame, removals: pd.DataFrame) -> pd.DataFram
     candidates = last[(absent & (reason != "retired")) | failed_after]
 
     # a replacement: another serial first seen in the same host/slot after the lost one's last sighting
-    first_seen = frame.groupby(["host", "slot", "serial"], as_index=False)["taken_at"].min()
-    keep = []
-    for row in candidates.itertuples(index=False):
-        same_slot = first_seen[(first_seen["host"] == row.host) & (first_seen["slot"] == row.slot)
-                               & (first_seen["serial"] != row.serial)]
-        keep.append(not (same_slot["taken_at"] > row.taken_at).any() or pd.isna(row.slot))
-    lost = candidates[keep] if len(candidates) else candidates
-    return lost.rename(columns={"taken_at": "last_seen"})[columns].reset_index(drop=True)
+    if len(candidates):
+        first_seen = frame.groupby(["host", "slot", "serial"], as_index=False)["taken_at"].min()  # no null keys
+        pairs = candidates.reset_index().merge(first_seen, on=["host", "slot"], suffixes=("", "_other"))
+        replaced = pairs.loc[(pairs["serial_other"] != pairs["serial"]) & (pairs["taken_at_other"] > pairs["taken_at"]),
+                             "index"]
+        candidates = candidates[~candidates.index.isin(set(replaced)) | candidates["slot"].isna()]
+    return candidates.rename(columns={"taken_at": "last_seen"})[columns].reset_index(drop=True)
 
 
 # -- the group table --------------------------------------------------------------------------
@@ -213,22 +245,37 @@ def group_risk(members: pd.DataFrame, lost: pd.DataFrame, config: GroupConfig) -
         replacing this drive buys the group, and it is what lifts two weak drives in one group above
         a lone weak drive.
     """
-    rows, importance = [], {}
+    importance = {}
     lost_count = lost.groupby("group").size() if len(lost) else pd.Series(dtype=int)
-    for group, part in members.dropna(subset=["group"]).groupby("group", sort=True):
-        rule = config.for_group(str(group))
-        n_lost = int(lost_count.get(group, 0))
-        left = rule.tolerance - n_lost
-        p = part["p_member"].astype(float).tolist()
-        p_loss = prob_more_than(p, left)
-        for i, serial in enumerate(part["serial"]):
-            without = p[:i] + [0.0] + p[i + 1:]
-            importance[serial] = p_loss - prob_more_than(without, left)
-        rows.append({
-            "group": group, "members": len(part), "lost": n_lost, "tolerance": rule.tolerance,
-            "tolerance_left": left, "rebuild_hours": rule.rebuild_hours,
-            "p_group_loss": p_loss, "degraded": n_lost > 0,
-        })
-    columns = ["group", "members", "lost", "tolerance", "tolerance_left", "rebuild_hours",
-               "p_group_loss", "degraded"]
-    return pd.DataFrame(rows, columns=columns), pd.Series(importance, dtype=float)
+    members = members.dropna(subset=["group"])
+    codes, names = pd.factorize(members["group"], sort=True)
+    order = np.argsort(codes, kind="stable")  # each group's members in their given order
+    codes = codes[order]
+    serials = members["serial"].to_numpy()[order]
+    p_all = members["p_member"].to_numpy(dtype=float)[order]
+    bad = (p_all < 0.0) | (p_all > 1.0) | np.isnan(p_all)
+    if bad.any():
+        raise ValueError(f"member probability {p_all[bad][0]} is not within [0, 1]")
+    starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]]) if len(codes) else np.zeros(0, dtype=int)
+    sizes = np.diff(np.r_[starts, len(codes)])
+    rules = [config.for_group(str(g)) for g in names]
+    left = np.array([r.tolerance - int(lost_count.get(g, 0)) for r, g in zip(rules, names)], dtype=int)
+    p_loss = np.zeros(len(names))
+    # groups of one size and tolerance left go through the recurrence together, a column per member
+    for size, tolerance in sorted(set(zip(sizes.tolist(), left.tolist()))):
+        which = np.flatnonzero((sizes == size) & (left == tolerance))
+        matrix = p_all[starts[which][:, None] + np.arange(size)[None, :]]
+        p_loss[which] = prob_more_than_each(matrix, tolerance)
+        for i in range(size):
+            without = matrix.copy()
+            without[:, i] = 0.0
+            share = p_loss[which] - prob_more_than_each(without, tolerance)
+            importance.update(zip(serials[starts[which] + i], share.tolist()))
+    n_lost = np.array([int(lost_count.get(name, 0)) for name in names], dtype=int)
+    groups = pd.DataFrame({
+        "group": pd.Series(np.asarray(names, dtype=object), dtype=object), "members": sizes.astype(int),
+        "lost": n_lost, "tolerance": [r.tolerance for r in rules], "tolerance_left": left,
+        "rebuild_hours": [r.rebuild_hours for r in rules], "p_group_loss": p_loss, "degraded": n_lost > 0,
+    }, columns=["group", "members", "lost", "tolerance", "tolerance_left", "rebuild_hours", "p_group_loss",
+                "degraded"])
+    return groups, pd.Series(importance, dtype=float)

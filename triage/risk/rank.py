@@ -13,14 +13,14 @@ from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import Callable, Sequence
 
+import numpy as np
 import pandas as pd
 
 from triage.risk.groups import (
     GroupConfig,
     group_risk,
     lost_members,
-    member_probability,
-    window_probability,
+    member_probabilities,
 )
 from triage.risk.score import (
     SEVERITIES,
@@ -29,10 +29,11 @@ from triage.risk.score import (
     degraded_caution,
     drive_actions,
     moment_text,
-    risk_score,
+    risk_scores,
     severity_name,
     tier_index,
 )
+from triage.store.current import RECENT_DAYS
 from triage.store.dataset import EARLIEST_DAY
 
 #: Days of captures looked at to notice a member that went missing (at least this many).
@@ -82,19 +83,24 @@ def summarise_flags(flags: pd.DataFrame) -> pd.DataFrame:
     flags = flags.assign(category=flags["category"].map(severity_name))
     flags = flags.assign(_order=flags["severity"].map(tier_index))
     flags = flags.sort_values(["serial", "_order", "rule_id"], kind="stable")
-    rows = []
-    for serial, part in flags.groupby("serial", sort=True):
-        evidence = [str(e) if isinstance(e, str) and e else str(t)
-                    for e, t in zip(part["evidence"], part.get("title", part["rule_id"]))]
-        rows.append({
-            "serial": serial,
-            "severity": part["severity"].iloc[0],
-            "category": part["category"].iloc[0],
-            "categories": list(dict.fromkeys(c for c in part["category"] if c)),
-            "actions": drive_actions(zip(part["severity"], part["category"])),
-            "rules": list(dict.fromkeys(part["rule_id"].astype(str))),
-            "evidence": evidence,
-        })
+    titles = flags["title"] if "title" in flags else flags["rule_id"]
+    rows, current = [], None
+    # one pass over the firings, already in (serial, urgency, rule) order: plain Python per firing
+    for serial, severity, category, rule_id, evidence, title in zip(
+            flags["serial"].tolist(), flags["severity"].tolist(), flags["category"].tolist(),
+            flags["rule_id"].tolist(), flags["evidence"].tolist(), titles.tolist()):
+        if current is None or serial != current[0]:
+            current = (serial, severity, category, {}, [], {}, [])
+            rows.append(current)
+        _, _, _, categories, findings, rules, texts = current
+        if category:
+            categories[category] = None
+        findings.append((severity, category))
+        rules[str(rule_id)] = None
+        texts.append(str(evidence) if isinstance(evidence, str) and evidence else str(title))
+    rows = [{"serial": serial, "severity": severity, "category": category, "categories": list(categories),
+             "actions": drive_actions(findings), "rules": list(rules), "evidence": texts}
+            for serial, severity, category, categories, findings, rules, texts in rows]
     return pd.DataFrame(rows, columns=_FLAG_COLUMNS)
 
 
@@ -130,14 +136,8 @@ def rank_drives(
         drives["p_fail"] = float("nan")
 
     # each member's probability over its group's rebuild window
-    p_member = []
-    for row in drives.itertuples(index=False):
-        p_window = None
-        if p_fail is not None and horizon_days and not pd.isna(row.p_fail) and isinstance(row.group, str):
-            rebuild_days = config.for_group(row.group).rebuild_hours / 24.0
-            p_window = window_probability(row.p_fail, horizon_days, rebuild_days)
-        p_member.append(member_probability(p_window, row.severity))
-    drives["p_member"] = p_member
+    drives["p_member"] = member_probabilities(drives["p_fail"], drives["severity"], drives["group"],
+                                              horizon_days if p_fail is not None else None, config)
     groups, importance = group_risk(drives[["serial", "group", "p_member"]], lost, config)
     groups = _with_lost_members(groups, lost)
 
@@ -145,10 +145,8 @@ def rank_drives(
     drives["group_importance"] = drives["serial"].map(importance).fillna(0.0)
     drives["p_group_loss"] = drives["group"].map(by_group["p_group_loss"]).astype(float)
     drives["degraded"] = drives["group"].map(by_group["degraded"]).eq(True)
-    drives["score"] = [
-        risk_score(SEVERITY_WEIGHT.get(s, 0.0), p, g)
-        for s, p, g in zip(drives["severity"], drives["p_fail"], drives["group_importance"])
-    ]
+    drives["score"] = risk_scores(drives["severity"].map(lambda s: SEVERITY_WEIGHT.get(s, 0.0)).to_numpy(dtype=float),
+                                  drives["p_fail"].to_numpy(dtype=float), drives["group_importance"].to_numpy(dtype=float))
     drives["group_first"], group_notes = _first_in_degraded_group(drives, groups)
     drives["action"] = [
         action_text(actions, _caution_for(degraded, group, note, by_group))
@@ -286,6 +284,7 @@ def rank_store(
     )
 
     notes: list[str] = []
+    custom_rules = evaluate is not None
     if evaluate is None:
         from triage.rules import evaluate  # noqa: PLC0415  (rules layer, to our left)
     if model is _AUTO:
@@ -294,28 +293,34 @@ def rank_store(
     if odd:  # stored before ingest checked dates; the store leaves them out of every read
         notes.append(f"{len(odd)} capture day(s) dated in the future or before {EARLIEST_DAY} ignored "
                      f"(e.g. day={odd[-1]}): check the clocks of the hosts that wrote them")
-    days = store.days("snapshots")
-    newest = datetime.strptime(days[-1], "%Y-%m-%d").replace(tzinfo=timezone.utc) if days else None
     # enough history for the rules, for a missing group member, and to see every drive that
     # reported within ``silent_hours``
     lookback = max(int(getattr(ruleset, "window_days", 0) or 0), GROUP_LOOKBACK_DAYS, int(silent_hours // 24) + 1)
-    history = store.read("snapshots", since=newest - timedelta(days=lookback)) if days else None
-    if history is None or history.empty:
+    columns = None if custom_rules else _history_columns(ruleset, model)
+    state, rebuilt = store.current_state(columns=columns if lookback <= RECENT_DAYS else [])
+    if rebuilt:
+        notes.append(rebuilt)
+    if state.newest is None:
         empty = pd.DataFrame(columns=RANK_COLUMNS)
         return RankResult(empty, pd.DataFrame(), model is not None, getattr(model, "horizon_days", None), None,
                           notes + ["the store holds no captures yet"])
-    removals = store.read("removals")
+    newest = datetime(state.newest.year, state.newest.month, state.newest.day, tzinfo=timezone.utc)
+    since = newest - timedelta(days=lookback)
+    if lookback <= RECENT_DAYS:
+        history = state.recent_since(since).to_pandas()
+    else:  # a rule window longer than the current state keeps: read the partitions
+        history = store.read("snapshots", columns=columns, since=since)
+    removals = state.removals.to_pandas()
     as_of = history["taken_at"].max().to_pydatetime()  # the newest capture not in the future
 
-    # each drive's last sighting: recent ones from the history read above, older ones from the store
+    # each drive's last sighting: recent ones from the history read above, older ones from the state
     detail = ["serial", "taken_at", "model", "host", "slot", "group"]
-    latest = history.sort_values("taken_at").groupby("serial", as_index=False).last()
+    latest = last_values(history, list(dict.fromkeys([*detail, "power_on_hours", *getattr(model, "by", ())])))
     recent = latest[detail]
     removed = frozenset(removals["serial"]) if len(removals) else frozenset()
-    last_seen = store.last_times("snapshots", "serial")
-    older = last_seen[~last_seen["serial"].isin(set(recent["serial"]) | removed)]  # removed: never silent
-    sightings = pd.concat([recent, store.last_rows("snapshots", "serial", detail[2:], last=older)],
-                          ignore_index=True)
+    older = state.sightings.to_pandas()
+    older = older[~older["serial"].isin(set(recent["serial"]) | removed)]  # removed: never silent
+    sightings = pd.concat([recent, older[detail]], ignore_index=True)
     silent = silent_drives(sightings, removals, as_of, silent_hours)
     lost = lost_members(history, removals)
     gone = set(lost["serial"]) | set(silent["serial"])
@@ -340,6 +345,54 @@ def rank_store(
     silent = silent_flags(silent, previous)[SILENT_REPORT_COLUMNS]
     return RankResult(drives, groups, model is not None, horizon, as_of, notes, silent, summary, removed,
                       flags=flags, lost=lost)
+
+
+#: Snapshot columns a saved model scores a drive on (triage.survival.landmark.STATE_SOURCES,
+#: listed here so that ranking does not import the survival layer to learn them; a test holds
+#: the two lists equal).
+MODEL_COLUMNS = (
+    "serial", "taken_at", "power_on_hours", "model", "firmware", "bus", "user_capacity_bytes",
+    "host", "slot", "group", "temperature_c", "reallocated_sectors", "reallocation_events", "pending_sectors",
+    "offline_uncorrectable", "reported_uncorrectable", "command_timeouts", "nvme_critical_warning",
+    "nvme_spare_pct", "nvme_spare_threshold_pct", "nvme_media_errors", "prefail_tripped",
+)
+
+
+def _history_columns(ruleset, model) -> list[str] | None:
+    """The snapshot columns ranking reads: what the rules, the model and the group checks use
+    (None, every column, when the rule set does not say which fields it reads)."""
+    fields = getattr(ruleset, "fields", None)
+    if fields is None:
+        return None
+    from triage.store.schema import SNAPSHOTS  # noqa: PLC0415  (store layer, to our left)
+
+    wanted = {"serial", "taken_at", "model", "host", "slot", "group", "power_on_hours", *fields}
+    if model is not None:
+        wanted |= {*MODEL_COLUMNS, *getattr(model, "by", ())}
+    return [c for c in SNAPSHOTS.names if c in wanted]
+
+
+def last_values(history: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
+    """Per serial (in serial order), each column's last known value by capture time: what
+    ``history.sort_values("taken_at").groupby("serial", as_index=False).last()`` gives, done with
+    one sort and an index per column."""
+    frame = history[history["serial"].notna()]
+    codes, serials = pd.factorize(frame["serial"], sort=True)
+    times = frame["taken_at"].to_numpy()
+    order = np.lexsort((times, codes))
+    codes = codes[order]
+    starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]]) if len(codes) else np.zeros(0, dtype=int)
+    out = {}
+    for column in columns:
+        if column == "serial":
+            out[column] = pd.Series(np.asarray(serials, dtype=object))
+            continue
+        values = frame[column].iloc[order]
+        position = np.where(values.notna().to_numpy(), np.arange(len(values)), -1)
+        last = np.maximum.reduceat(position, starts) if len(position) else np.zeros(0, dtype=int)
+        taken = values.iloc[np.clip(last, 0, None)].reset_index(drop=True)
+        out[column] = taken.where(pd.Series(last >= 0)) if (last < 0).any() else taken
+    return pd.DataFrame(out, columns=columns)
 
 
 def silent_drives(sightings: pd.DataFrame, removals: pd.DataFrame, as_of: datetime,

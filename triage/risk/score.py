@@ -21,6 +21,7 @@ from __future__ import annotations
 
 from typing import Iterable
 
+import numpy as np
 import pandas as pd
 
 from triage.safety import name
@@ -79,6 +80,14 @@ def risk_score(w_severity: float, p_fail: float | None, group_importance: float)
     p = 0.0 if p_fail is None or pd.isna(p_fail) else float(p_fail)
     g = 0.0 if pd.isna(group_importance) else float(group_importance)
     return 1.0 - (1.0 - float(w_severity)) * (1.0 - p) * (1.0 - g)
+
+
+def risk_scores(w_severity: np.ndarray, p_fail: np.ndarray, group_importance: np.ndarray) -> np.ndarray:
+    """``risk_score`` of many drives at once (the same operations in the same order, so the same
+    floating-point result)."""
+    p = np.nan_to_num(np.asarray(p_fail, dtype=float), nan=0.0)
+    g = np.nan_to_num(np.asarray(group_importance, dtype=float), nan=0.0)
+    return 1.0 - (1.0 - np.asarray(w_severity, dtype=float)) * (1.0 - p) * (1.0 - g)
 
 
 def finding_kind(severity: str | None, category: str | None) -> str:

@@ -10,6 +10,7 @@ Layout (a public contract; other engines read the tables directly)::
     <root>/_manifest.jsonl                                  one line per committed batch
     <root>/_format.json                                     the layout's version (schema.STORE_FORMAT)
     <root>/_lock                                            held while a writer runs
+    <root>/current/                                         each drive's current state (current.py)
 
 How a commit stays atomic: every Parquet file is written under a dot-name, flushed to disk,
 then renamed into place; the manifest line that records the batch and its source files is
@@ -60,6 +61,7 @@ import pyarrow.compute as pc
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
+from triage.store import current
 from triage.store.schema import PARTITION_COLUMN, RENAMED_SINCE, STORE_FORMAT, TABLES
 
 MANIFEST = "_manifest.jsonl"
@@ -313,9 +315,10 @@ class Store:
             if self.format_version() is None:
                 self._write_format()
             self.sweep()
-            written = {}
+            written, parts = {}, {}
             for table, frame in frames.items():
-                written[table] = self._write_table(table, frame, batch)
+                parts[table] = []
+                written[table] = self._write_table(table, frame, batch, parts[table])
             rejected = list(quarantine)
             if rejected:
                 self._write_quarantine(rejected, batch)
@@ -328,7 +331,67 @@ class Store:
                     "quarantined": len(rejected),
                 }
             )
+            self._update_current(parts)
         return written
+
+    # -- the current state (triage/store/current.py) --------------------------------------
+    def _batches(self) -> tuple[str | None, int]:
+        """(the manifest's last batch id, how many batches it records)."""
+        entries = [e["batch"] for e in self.manifest() if isinstance(e, dict) and isinstance(e.get("batch"), str)]
+        return (entries[-1] if entries else None), len(entries)
+
+    def _update_current(self, parts: Mapping[str, list[pa.Table]]) -> None:
+        """After a commit's manifest line (writer lock held): merge its new rows into the saved
+        state, or rebuild it when the saved one does not reflect the batch before. A failure here
+        (a full disk) leaves the state stale, to be rebuilt on next use: the commit stands."""
+        entries = [e["batch"] for e in self.manifest() if isinstance(e, dict) and isinstance(e.get("batch"), str)]
+        batch, batches = entries[-1], len(entries)
+        before = entries[-2] if batches > 1 else None
+        earliest, ceiling = self._sane_window()
+        try:
+            try:
+                state = current.load(self.root, before, batches - 1)
+                if not state.fits_clock(ceiling):
+                    raise current.StaleState("made under another clock")
+                new = {t: pa.concat_tables(p) if p else None for t, p in parts.items()}
+                state = current.merge(state, new.get("snapshots"), new.get("removals"),
+                                      earliest=earliest, ceiling=ceiling)
+            except current.StaleState:
+                state = current.build(self)
+            state.batch, state.batches = batch, batches
+            current.save(self.root, state)
+        except OSError:
+            pass
+
+    def current_state(self, columns: list[str] | None = None) -> tuple[current.CurrentState, str | None]:
+        """Each drive's current state (triage/store/current.py) and a note when the saved one could
+        not be used and was rebuilt from the history. ``columns``: of the recent window (default all).
+
+        A rebuilt state is saved when the writer lock is free (never waited for) and the manifest
+        did not move meanwhile; otherwise it serves this run only.
+        """
+        self.upgrade()
+        batch, batches = self._batches()
+        earliest, ceiling = self._sane_window()
+        try:
+            state = current.load(self.root, batch, batches, columns)
+            if not state.fits_clock(ceiling):
+                raise current.StaleState("made under another clock (a capture stored in the future is now "
+                                         "readable, or the clock went back)")
+            return state, None
+        except current.StaleState as exc:
+            why = str(exc)
+        state = current.build(self)
+        if batches:
+            try:
+                with self.lock():
+                    if self._batches() == (batch, batches):
+                        current.save(self.root, state)
+            except (StoreLocked, OSError):
+                pass
+        if columns is not None:
+            state.recent = state.recent.select(columns)
+        return state, f"current state rebuilt from the history ({why})"
 
     def sweep(self) -> int:
         """Delete temporary files and parts of batches the manifest never recorded (a killed
@@ -354,7 +417,10 @@ class Store:
                 removed += 1
         return removed
 
-    def _write_table(self, table: str, frame: pd.DataFrame | pa.Table, batch: str) -> int:
+    def _write_table(self, table: str, frame: pd.DataFrame | pa.Table, batch: str,
+                     stored: list[pa.Table] | None = None) -> int:
+        """Write one table's rows of a batch, one file per day; the rows written (keys not stored
+        before) are appended to ``stored`` when given."""
         schema, time_column, key = TABLES[table]
         if len(frame) == 0:
             return 0
@@ -380,6 +446,8 @@ class Store:
             _fsync_file(temp)
             os.replace(temp, final)
             _fsync_dir(part_dir)
+            if stored is not None:
+                stored.append(part)  # list.append is atomic under the GIL
             return part.num_rows
 
         # Parquet encoding and zstd run outside the GIL: one thread per core writes the days.
@@ -485,6 +553,15 @@ class Store:
             return self.read(table, columns=wanted).iloc[0:0]
         rows = pd.concat(parts, ignore_index=True)
         return rows.drop_duplicates(subset=[key], keep="last")[wanted].reset_index(drop=True)
+
+    def all_days(self, table: str) -> list[str]:
+        """Every day partition name in the sane window, oldest first (committed or not)."""
+        return self._day_names(table)
+
+    def all_parts(self, table: str, day: str | None = None) -> list[Path]:
+        """Committed Parquet files of ``table`` (of one ``day``, or of every day in the sane window)."""
+        days = [day] if day is not None else self._day_names(table)
+        return [f for d in days for f in self._committed_parts(table, d)]
 
     def days(self, table: str) -> list[str]:
         """The day partitions holding committed rows in the sane window, oldest first."""

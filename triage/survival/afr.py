@@ -21,7 +21,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.stats import chi2
 
 #: Hours in a year of 365.25 days, the convention behind datasheet MTTF -> AFR conversions.
 HOURS_PER_YEAR = 8766.0
@@ -46,6 +45,8 @@ def garwood_limits(events, alpha: float = 0.05) -> tuple[np.ndarray, np.ndarray]
 
     Vectorised over ``events``. ``events = 0`` gives ``(0, -ln(alpha / 2))``: 3.689 at 95 %.
     """
+    from scipy.stats import chi2  # noqa: PLC0415  (here, so that scoring a saved model never imports scipy)
+
     k = np.asarray(events, dtype=float)
     if np.any(k < 0) or np.any(k != np.floor(k)):
         raise ValueError("event counts must be non-negative integers")

@@ -48,7 +48,6 @@ import numpy as np
 import pandas as pd
 
 from triage import __version__
-from triage.survival.cohorts import cohort_table
 from triage.survival.landmark import (
     ACTIVE_DAYS,
     GROWTH_DAYS,
@@ -161,6 +160,8 @@ class FleetRiskModel:
         say("building the observation table")
         obs = observations(scan, removals, self.by, self.count_proactive)
         say("fitting AFR and Weibull per cohort")
+        from triage.survival.cohorts import cohort_table  # noqa: PLC0415  (the fitting stack: not loaded to score)
+
         self.cohort_table_ = cohort_table(obs)
         self.exclusions_ = obs.exclusions
         # drives left out for data quality stay out of the landmark rows too

@@ -1,0 +1,283 @@
+"""Each drive's current state, kept beside the history so that ranking never scans it.
+
+``triage rank`` needs, whatever the length of the history: the snapshot rows of the last few
+days (the rules' windows, a missing group member, the model's counter growth), the newest
+capture of every drive ever seen (who went silent) and the removal log. ``Store.commit`` keeps
+them in ``<store>/current/``::
+
+    current/state.json                  what the files below reflect (written last, atomically)
+    current/recent-<tag>.parquet        snapshot rows taken on or after the newest capture's
+                                        UTC day minus RECENT_DAYS (every snapshot column)
+    current/sightings-<tag>.parquet     the newest capture of every serial ever stored
+                                        (SIGHTING_COLUMNS)
+    current/removals-<tag>.parquet      the whole removal log
+
+Only rows a reader accepts are in it (``Store.read``'s sane date window). ``state.json`` records
+the manifest's last batch and its number of batches: a state that does not match the manifest is
+stale, and so is one written by another version (``STATE_VERSION``, ``RECENT_DAYS``), one whose
+files cannot be read, and one built under a clock that no longer holds (a capture stored in the
+future has since become readable, or the clock went back before the newest capture). A stale or
+missing state is rebuilt from the history (``build``), never trusted.
+
+How it stays consistent with the commit: the state is updated after the commit's manifest line,
+under the same writer lock. A crash between the two leaves ``state.json`` naming the batch before:
+stale, rebuilt on next use. New files get a fresh tag and ``state.json`` is replaced atomically
+before the old files are deleted, so a reader sees the old state or the new one.
+
+Incremental update (``merge``): the new rows of a commit join the old state -- each serial keeps
+its newest sighting, the recent window is cut again at the newest day minus ``RECENT_DAYS``.
+Because the newest day never moves back, a row the cut keeps was kept by every earlier cut, so
+the state after any order of commits (a late file for an older day included) equals ``build``
+over the same history; ``tests/store/test_current.py`` checks that on random commit orders.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import secrets
+from dataclasses import dataclass
+from datetime import datetime, timedelta, timezone
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+
+from triage.store.schema import REMOVALS, SNAPSHOTS, TABLES, TIMESTAMP
+
+CURRENT_DIR = "current"
+STATE_FILE = "state.json"
+#: Version of this folder's layout; any other is rebuilt.
+STATE_VERSION = 1
+#: Days of snapshot rows kept before the newest capture's UTC day. At least the default rules'
+#: window (8 days), the group look-back of ``triage.risk.rank`` (7) and the survival model's
+#: counter-growth window (14); a rule set asking for more makes rank read the partitions.
+RECENT_DAYS = 15
+#: The columns of a drive's newest sighting.
+SIGHTING_COLUMNS = ["serial", "taken_at", "model", "host", "slot", "group"]
+SIGHTINGS = pa.schema([SNAPSHOTS.field(name) for name in SIGHTING_COLUMNS])
+_PARTS = {"recent": SNAPSHOTS, "sightings": SIGHTINGS, "removals": REMOVALS}
+
+
+class StaleState(Exception):
+    """The saved state cannot be used (the message says why); it is rebuilt from the history."""
+
+
+@dataclass
+class CurrentState:
+    """What rank reads instead of the history (module docstring). Tables in the store's schemas."""
+
+    recent: pa.Table
+    sightings: pa.Table
+    removals: pa.Table
+    newest: datetime | None  # the newest readable capture
+    ceiling: datetime  # the latest readable moment when this state was made
+    next_future: datetime | None  # the earliest stored row beyond ``ceiling`` (it becomes readable later)
+    batch: str | None  # the manifest's last batch this state reflects
+    batches: int  # how many batches the manifest held
+
+    def fits_clock(self, ceiling: datetime) -> bool:
+        """True when a reader whose latest readable moment is ``ceiling`` sees the same rows."""
+        if self.newest is not None and ceiling < self.newest:
+            return False
+        return self.next_future is None or ceiling < self.next_future
+
+    def recent_since(self, since: datetime, columns: list[str] | None = None) -> pa.Table:
+        rows = self.recent if columns is None else self.recent.select(columns if "taken_at" in columns
+                                                                      else [*columns, "taken_at"])
+        kept = rows.filter(pc.greater_equal(rows["taken_at"], pa.scalar(since, TIMESTAMP)))
+        return kept if columns is None or "taken_at" in columns else kept.drop_columns(["taken_at"])
+
+
+def empty_state(ceiling: datetime) -> CurrentState:
+    return CurrentState(SNAPSHOTS.empty_table(), SIGHTINGS.empty_table(), REMOVALS.empty_table(),
+                        None, ceiling, None, None, 0)
+
+
+# -- the arithmetic ------------------------------------------------------------------------
+def recent_floor(newest: datetime) -> datetime:
+    """The oldest moment the recent window keeps: the newest capture's UTC midnight - RECENT_DAYS."""
+    midnight = datetime(newest.year, newest.month, newest.day, tzinfo=timezone.utc)
+    return midnight - timedelta(days=RECENT_DAYS)
+
+
+def _readable(rows: pa.Table, time_column: str, earliest: datetime, ceiling: datetime) -> tuple[pa.Table, datetime | None]:
+    """(rows a reader accepts, the earliest row beyond ``ceiling`` or None)."""
+    if rows.num_rows == 0:
+        return rows, None
+    stamp = rows[time_column]
+    low, high = pa.scalar(earliest, TIMESTAMP), pa.scalar(ceiling, TIMESTAMP)
+    future = rows.filter(pc.greater(stamp, high))
+    first_future = pc.min(future[time_column]).as_py() if future.num_rows else None
+    return rows.filter(pc.and_(pc.greater_equal(stamp, low), pc.less_equal(stamp, high))), first_future
+
+
+def _newest_per_serial(rows: pa.Table) -> pa.Table:
+    """One row per serial, its newest (a later ``taken_at`` wins; equal keys are one capture)."""
+    if rows.num_rows == 0:
+        return rows
+    order = pc.sort_indices(rows, sort_keys=[("serial", "ascending"), ("taken_at", "ascending")])
+    rows = rows.take(order)
+    serial = rows["serial"].combine_chunks()
+    codes = pc.dictionary_encode(serial).indices.to_numpy(zero_copy_only=False) if len(serial) else np.zeros(0)
+    last = np.flatnonzero(np.r_[codes[1:] != codes[:-1], True])
+    return rows.take(pa.array(last))
+
+
+def _min_time(*moments: datetime | None) -> datetime | None:
+    known = [m for m in moments if m is not None]
+    return min(known) if known else None
+
+
+def merge(state: CurrentState, snapshots: pa.Table | None, removals: pa.Table | None, *,
+          earliest: datetime, ceiling: datetime) -> CurrentState:
+    """``state`` with a commit's new rows added (module docstring: incremental == rebuild)."""
+    snapshots = snapshots if snapshots is not None else SNAPSHOTS.empty_table()
+    removals = removals if removals is not None else REMOVALS.empty_table()
+    new_rows, future_rows = _readable(snapshots.select(SNAPSHOTS.names).cast(SNAPSHOTS), "taken_at", earliest, ceiling)
+    new_removals, future_removals = _readable(removals.select(REMOVALS.names).cast(REMOVALS), "removed_at",
+                                              earliest, ceiling)
+    newest = state.newest
+    if new_rows.num_rows:
+        top = pc.max(new_rows["taken_at"]).as_py()
+        newest = top if newest is None else max(newest, top)
+    recent = pa.concat_tables([state.recent, new_rows]) if new_rows.num_rows else state.recent
+    if newest is not None and recent.num_rows:
+        recent = recent.filter(pc.greater_equal(recent["taken_at"], pa.scalar(recent_floor(newest), TIMESTAMP)))
+    sightings = state.sightings
+    if new_rows.num_rows:
+        sightings = _newest_per_serial(pa.concat_tables([sightings, new_rows.select(SIGHTING_COLUMNS)]))
+    return CurrentState(
+        recent=recent.combine_chunks(), sightings=sightings.combine_chunks(),
+        removals=pa.concat_tables([state.removals, new_removals]).combine_chunks(),
+        newest=newest, ceiling=ceiling,
+        next_future=_min_time(state.next_future, future_rows, future_removals),
+        batch=state.batch, batches=state.batches)
+
+
+def build(store) -> CurrentState:
+    """The state from the store's history, by the same rules as ``merge`` (memory: the state
+    plus one day). Sightings are folded in day by day from a few columns; the recent window is
+    then read from the days it covers. Raises OSError when the history cannot be read."""
+    earliest, ceiling = store._sane_window()
+    entries = [e for e in store.manifest() if isinstance(e, dict) and isinstance(e.get("batch"), str)]
+    removals, future = _readable(_read_parts(store, "removals", store.all_parts("removals")), "removed_at",
+                                 earliest, ceiling)
+    newest, pending, sightings = None, [], SIGHTINGS.empty_table()
+    days = store.all_days("snapshots")
+    for day in days:
+        rows, later = _readable(_read_parts(store, "snapshots", store.all_parts("snapshots", day), SIGHTING_COLUMNS),
+                                "taken_at", earliest, ceiling)
+        future = _min_time(future, later)
+        if rows.num_rows:
+            top = pc.max(rows["taken_at"]).as_py()
+            newest = top if newest is None else max(newest, top)
+            pending.append(_newest_per_serial(rows))
+        if len(pending) >= 16 or day == days[-1]:  # fold a few days at a time
+            sightings = _newest_per_serial(pa.concat_tables([sightings, *pending]))
+            pending = []
+    recent = SNAPSHOTS.empty_table()
+    if newest is not None:
+        floor = recent_floor(newest)
+        window = [d for d in days if d >= floor.date().isoformat()]
+        rows = [_readable(_read_parts(store, "snapshots", store.all_parts("snapshots", d)), "taken_at",
+                          earliest, ceiling)[0] for d in window]
+        recent = pa.concat_tables([recent, *rows])
+        recent = recent.filter(pc.greater_equal(recent["taken_at"], pa.scalar(floor, TIMESTAMP)))
+    return CurrentState(recent=recent.combine_chunks(), sightings=sightings.combine_chunks(),
+                        removals=removals.combine_chunks(), newest=newest, ceiling=ceiling, next_future=future,
+                        batch=entries[-1]["batch"] if entries else None, batches=len(entries))
+
+
+def _read_parts(store, table: str, files: list[Path], columns: list[str] | None = None) -> pa.Table:
+    schema = TABLES[table][0]
+    if columns is not None:
+        schema = pa.schema([schema.field(c) for c in columns])
+    if not files:
+        return schema.empty_table()
+    return pa.concat_tables([pq.read_table(f, columns=schema.names, schema=schema) for f in files])
+
+
+# -- saving and loading ------------------------------------------------------------------------
+def save(root: Path, state: CurrentState) -> None:
+    """Write ``state`` under ``root/current`` atomically (module docstring); old files go last."""
+    folder = Path(root) / CURRENT_DIR
+    folder.mkdir(parents=True, exist_ok=True)
+    tag = f"{state.batches}-{secrets.token_hex(4)}"
+    names = {}
+    for part in _PARTS:
+        names[part] = f"{part}-{tag}.parquet"
+        temp = folder / f".{names[part]}.tmp"
+        pq.write_table(getattr(state, part), temp, compression="zstd")
+        _fsync(temp)
+        os.replace(temp, folder / names[part])
+    meta = {"state_version": STATE_VERSION, "recent_days": RECENT_DAYS, "batch": state.batch,
+            "batches": state.batches, "newest": _iso(state.newest), "ceiling": _iso(state.ceiling),
+            "next_future": _iso(state.next_future), "files": names}
+    temp = folder / f".{STATE_FILE}.tmp"
+    temp.write_text(json.dumps(meta, sort_keys=True) + "\n", encoding="utf-8")
+    _fsync(temp)
+    os.replace(temp, folder / STATE_FILE)
+    _fsync(folder)
+    keep = set(names.values()) | {STATE_FILE}
+    for entry in os.listdir(folder):
+        if entry not in keep:
+            (folder / entry).unlink(missing_ok=True)
+
+
+def load(root: Path, batch: str | None, batches: int, columns: list[str] | None = None) -> CurrentState:
+    """The saved state if it reflects the manifest's ``batch`` / ``batches``; raises StaleState
+    saying why not. ``columns``: the recent window's columns to read (default: all)."""
+    folder = Path(root) / CURRENT_DIR
+    path = folder / STATE_FILE
+    if not path.is_file():
+        raise StaleState(f"no {CURRENT_DIR}/{STATE_FILE} yet")
+    try:
+        meta = json.loads(path.read_text(encoding="utf-8"))
+        if not isinstance(meta, dict):
+            raise ValueError("not an object")
+        version, days = meta.get("state_version"), meta.get("recent_days")
+        if version != STATE_VERSION or days != RECENT_DAYS:
+            raise StaleState(f"{path}: written for state version {version!r} / {days!r} recent days, "
+                             f"this triage keeps {STATE_VERSION} / {RECENT_DAYS}")
+        if meta.get("batch") != batch or meta.get("batches") != batches:
+            raise StaleState(f"{path}: reflects batch {meta.get('batch')!r} of {meta.get('batches')!r}, "
+                             f"the manifest ends at {batch!r} of {batches}")
+        files = meta["files"]
+        tables = {}
+        for part, schema in _PARTS.items():
+            wanted = columns if part == "recent" and columns is not None else schema.names
+            table = pq.read_table(folder / files[part], columns=wanted)
+            if not table.schema.equals(pa.schema([schema.field(c) for c in wanted])):
+                raise ValueError(f"{files[part]} does not hold the columns of {part}")
+            tables[part] = table
+        return CurrentState(tables["recent"], tables["sightings"], tables["removals"],
+                            _moment(meta["newest"]), _moment(meta["ceiling"]), _moment(meta["next_future"]),
+                            meta["batch"], meta["batches"])
+    except StaleState:
+        raise
+    except (OSError, ValueError, KeyError, TypeError, pa.ArrowException) as exc:
+        raise StaleState(f"{path}: unreadable ({type(exc).__name__}: {exc})") from None
+
+
+def _iso(moment: datetime | None) -> str | None:
+    return None if moment is None else moment.astimezone(timezone.utc).isoformat()
+
+
+def _moment(text) -> datetime | None:
+    if text is None:
+        return None
+    moment = datetime.fromisoformat(text)
+    if moment.tzinfo is None:
+        raise ValueError(f"time {text!r} has no UTC offset")
+    return moment
+
+
+def _fsync(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
