@@ -51,6 +51,8 @@ from typing import Iterable, Sequence
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 #: Single parity / two-way mirror: the most common layout, so the cautious default.
 DEFAULT_TOLERANCE = 1
@@ -207,13 +209,19 @@ def lost_members(snapshots: pd.DataFrame, removals: pd.DataFrame) -> pd.DataFram
     Returns columns group, serial, host, slot, last_seen.
     """
     columns = ["group", "serial", "host", "slot", "last_seen"]
-    frame = snapshots.loc[snapshots["group"].notna(), ["group", "serial", "host", "slot", "taken_at"]]
-    if frame.empty:
+    rows = snapshots if isinstance(snapshots, pa.Table) else pa.Table.from_pandas(
+        snapshots.loc[:, ["group", "serial", "host", "slot", "taken_at"]], preserve_index=False)
+    rows = rows.select(["group", "serial", "host", "slot", "taken_at"]).filter(pc.is_valid(rows["group"]))
+    if rows.num_rows == 0:
         return pd.DataFrame(columns=columns)
-    frame = frame.assign(night=frame["taken_at"].dt.floor("D"))
-    last = frame.sort_values("taken_at").groupby(["group", "serial"], as_index=False).last()
-    group_night = frame.groupby("group")["night"].max()
-    absent = last["night"] < last["group"].map(group_night)
+    # each member's last sighting in its group (each field's last known value, as pandas' groupby last)
+    ordered = rows.sort_by([("taken_at", "ascending")])
+    last = ordered.group_by(["group", "serial"], use_threads=False).aggregate(
+        [("host", "last"), ("slot", "last"), ("taken_at", "last")]).to_pandas()
+    last = last.rename(columns={"host_last": "host", "slot_last": "slot", "taken_at_last": "taken_at"})
+    last = last.dropna(subset=["serial"]).sort_values(["group", "serial"], kind="stable").reset_index(drop=True)
+    group_night = last.groupby("group")["taken_at"].max().dt.floor("D")  # the group's latest capture night
+    absent = last["taken_at"].dt.floor("D") < last["group"].map(group_night)
 
     removed = removals.sort_values("removed_at").groupby("serial").last()
     reason = last["serial"].map(removed["reason"])
@@ -223,7 +231,10 @@ def lost_members(snapshots: pd.DataFrame, removals: pd.DataFrame) -> pd.DataFram
 
     # a replacement: another serial first seen in the same host/slot after the lost one's last sighting
     if len(candidates):
-        first_seen = frame.groupby(["host", "slot", "serial"], as_index=False)["taken_at"].min()  # no null keys
+        placed = rows.filter(pc.and_(pc.and_(pc.is_valid(rows["host"]), pc.is_valid(rows["slot"])),
+                                     pc.is_valid(rows["serial"])))
+        first_seen = placed.group_by(["host", "slot", "serial"]).aggregate([("taken_at", "min")]).to_pandas()
+        first_seen = first_seen.rename(columns={"taken_at_min": "taken_at"})
         pairs = candidates.reset_index().merge(first_seen, on=["host", "slot"], suffixes=("", "_other"))
         replaced = pairs.loc[(pairs["serial_other"] != pairs["serial"]) & (pairs["taken_at_other"] > pairs["taken_at"]),
                              "index"]

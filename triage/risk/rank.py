@@ -15,6 +15,8 @@ from typing import Callable, Sequence
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from triage.risk.groups import (
     GroupConfig,
@@ -33,7 +35,7 @@ from triage.risk.score import (
     severity_name,
     tier_index,
 )
-from triage.store.current import RECENT_DAYS
+from triage.store.current import RECENT_DAYS, window_start
 from triage.store.dataset import EARLIEST_DAY
 
 #: Days of captures looked at to notice a member that went missing (at least this many).
@@ -297,32 +299,31 @@ def rank_store(
     # reported within ``silent_hours``
     lookback = max(int(getattr(ruleset, "window_days", 0) or 0), GROUP_LOOKBACK_DAYS, int(silent_hours // 24) + 1)
     columns = None if custom_rules else _history_columns(ruleset, model)
-    state, rebuilt = store.current_state(columns=columns if lookback <= RECENT_DAYS else [])
+    fits = lookback <= RECENT_DAYS  # else the rules ask for more days than the state keeps
+    state, rebuilt = store.current_state(columns=columns if fits else [], days_back=lookback if fits else 0)
     if rebuilt:
         notes.append(rebuilt)
     if state.newest is None:
         empty = pd.DataFrame(columns=RANK_COLUMNS)
         return RankResult(empty, pd.DataFrame(), model is not None, getattr(model, "horizon_days", None), None,
                           notes + ["the store holds no captures yet"])
-    newest = datetime(state.newest.year, state.newest.month, state.newest.day, tzinfo=timezone.utc)
-    since = newest - timedelta(days=lookback)
-    if lookback <= RECENT_DAYS:
-        history = state.recent_since(since).to_pandas()
-    else:  # a rule window longer than the current state keeps: read the partitions
-        history = store.read("snapshots", columns=columns, since=since)
+    if fits:
+        recent = state.recent
+    else:  # read the partitions
+        recent = store.read("snapshots", columns=columns, since=window_start(state.newest, lookback), as_table=True)
     removals = state.removals.to_pandas()
-    as_of = history["taken_at"].max().to_pydatetime()  # the newest capture not in the future
+    as_of = pc.max(recent["taken_at"]).as_py()  # the newest capture not in the future
 
     # each drive's last sighting: recent ones from the history read above, older ones from the state
     detail = ["serial", "taken_at", "model", "host", "slot", "group"]
-    latest = last_values(history, list(dict.fromkeys([*detail, "power_on_hours", *getattr(model, "by", ())])))
-    recent = latest[detail]
+    latest = last_values(recent, list(dict.fromkeys([*detail, "power_on_hours", *getattr(model, "by", ())])))
+    recent_seen = latest[detail]
     removed = frozenset(removals["serial"]) if len(removals) else frozenset()
     older = state.sightings.to_pandas()
-    older = older[~older["serial"].isin(set(recent["serial"]) | removed)]  # removed: never silent
-    sightings = pd.concat([recent, older[detail]], ignore_index=True)
+    older = older[~older["serial"].isin(set(recent_seen["serial"]) | removed)]  # removed: never silent
+    sightings = pd.concat([recent_seen, older[detail]], ignore_index=True)
     silent = silent_drives(sightings, removals, as_of, silent_hours)
-    lost = lost_members(history, removals)
+    lost = lost_members(recent, removals)
     gone = set(lost["serial"]) | set(silent["serial"])
     if len(removals):
         removed_at = removals.groupby("serial")["removed_at"].max()
@@ -330,10 +331,11 @@ def rank_store(
         gone |= set(latest.loc[left.fillna(False).astype(bool), "serial"])
     latest = latest[~latest["serial"].isin(gone)]
 
-    flags = evaluate(ruleset, history, now=as_of)
+    rule_columns = None if columns is None else ["serial", "taken_at", *sorted(getattr(ruleset, "fields", ()))]
+    flags = evaluate(ruleset, (recent if rule_columns is None else recent.select(rule_columns)).to_pandas(), now=as_of)
     p_fail, horizon = None, None
     if model is not None:
-        p_fail = model.predict_fail_probability(latest, horizon_days=None, history=history)
+        p_fail = model.predict_fail_probability(latest, horizon_days=None, history=scoring_rows(recent))
         horizon = float(model.horizon_days)
     else:
         notes.append("no saved survival model: ranking on rules alone (p_fail is empty)")
@@ -372,27 +374,39 @@ def _history_columns(ruleset, model) -> list[str] | None:
     return [c for c in SNAPSHOTS.names if c in wanted]
 
 
-def last_values(history: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
+def last_values(history: pa.Table, columns: list[str]) -> pd.DataFrame:
     """Per serial (in serial order), each column's last known value by capture time: what
-    ``history.sort_values("taken_at").groupby("serial", as_index=False).last()`` gives, done with
-    one sort and an index per column."""
-    frame = history[history["serial"].notna()]
-    codes, serials = pd.factorize(frame["serial"], sort=True)
-    times = frame["taken_at"].to_numpy()
-    order = np.lexsort((times, codes))
-    codes = codes[order]
-    starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]]) if len(codes) else np.zeros(0, dtype=int)
-    out = {}
-    for column in columns:
-        if column == "serial":
-            out[column] = pd.Series(np.asarray(serials, dtype=object))
-            continue
-        values = frame[column].iloc[order]
-        position = np.where(values.notna().to_numpy(), np.arange(len(values)), -1)
-        last = np.maximum.reduceat(position, starts) if len(position) else np.zeros(0, dtype=int)
-        taken = values.iloc[np.clip(last, 0, None)].reset_index(drop=True)
-        out[column] = taken.where(pd.Series(last >= 0)) if (last < 0).any() else taken
-    return pd.DataFrame(out, columns=columns)
+    ``history.to_pandas().sort_values("taken_at").groupby("serial", as_index=False).last()``
+    gives (dtypes included), computed by Arrow without the per-row frame."""
+    others = [c for c in columns if c != "serial"]
+    rows = history.select(["serial", *others]).filter(pc.is_valid(history["serial"])).sort_by([("taken_at", "ascending")])
+    last = rows.group_by("serial", use_threads=False).aggregate([(c, "last") for c in others])
+    frame = last.to_pandas().rename(columns={f"{c}_last": c for c in others})
+    for column in others:  # the dtype the whole column has in pandas (nulls make ints float, bools object)
+        kind = history.schema.field(column).type
+        if history[column].null_count and pa.types.is_integer(kind):
+            frame[column] = frame[column].astype("float64")
+        elif history[column].null_count and pa.types.is_boolean(kind):
+            frame[column] = frame[column].astype(object)
+    return frame.sort_values("serial", kind="stable")[columns].reset_index(drop=True)
+
+
+def scoring_rows(history: pa.Table) -> pd.DataFrame:
+    """The rows of ``history`` a saved model's ``states_from_history`` looks at, as a frame: each
+    serial's first capture, its latest, and its latest at or before the newest capture minus the
+    model's growth window (``GROWTH_DAYS``). The states come out the same as from every row."""
+    from triage.survival.landmark import GROWTH_DAYS  # noqa: PLC0415  (survival layer, to our left)
+
+    rows = history.select(["serial", "taken_at"]).append_column("_row", pa.array(np.arange(history.num_rows)))
+    rows = rows.filter(pc.is_valid(rows["serial"]))
+    cut = pc.max(rows["taken_at"]).as_py() - timedelta(days=GROWTH_DAYS)
+    ordered = rows.sort_by([("taken_at", "ascending")])
+    ends = ordered.group_by("serial", use_threads=False).aggregate([("_row", "first"), ("_row", "last")])
+    early = ordered.filter(pc.less_equal(ordered["taken_at"], pa.scalar(cut, ordered.schema.field("taken_at").type)))
+    base = early.group_by("serial", use_threads=False).aggregate([("_row", "last")])
+    keep = np.unique(np.concatenate([ends["_row_first"].to_numpy(), ends["_row_last"].to_numpy(),
+                                     base["_row_last"].to_numpy()]))
+    return history.take(pa.array(keep)).to_pandas()
 
 
 def silent_drives(sightings: pd.DataFrame, removals: pd.DataFrame, as_of: datetime,

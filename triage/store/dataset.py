@@ -363,9 +363,11 @@ class Store:
         except OSError:
             pass
 
-    def current_state(self, columns: list[str] | None = None) -> tuple[current.CurrentState, str | None]:
+    def current_state(self, columns: list[str] | None = None,
+                      days_back: int | None = None) -> tuple[current.CurrentState, str | None]:
         """Each drive's current state (triage/store/current.py) and a note when the saved one could
-        not be used and was rebuilt from the history. ``columns``: of the recent window (default all).
+        not be used and was rebuilt from the history. ``columns`` and ``days_back`` narrow its
+        recent window (``current.load``; default: all of it).
 
         A rebuilt state is saved when the writer lock is free (never waited for) and the manifest
         did not move meanwhile; otherwise it serves this run only.
@@ -374,7 +376,7 @@ class Store:
         batch, batches = self._batches()
         earliest, ceiling = self._sane_window()
         try:
-            state = current.load(self.root, batch, batches, columns)
+            state = current.load(self.root, batch, batches, columns, days_back)
             if not state.fits_clock(ceiling):
                 raise current.StaleState("made under another clock (a capture stored in the future is now "
                                          "readable, or the clock went back)")
@@ -389,9 +391,7 @@ class Store:
                         current.save(self.root, state)
             except (StoreLocked, OSError):
                 pass
-        if columns is not None:
-            state.recent = state.recent.select(columns)
-        return state, f"current state rebuilt from the history ({why})"
+        return state.narrowed(columns, days_back), f"current state rebuilt from the history ({why})"
 
     def sweep(self) -> int:
         """Delete temporary files and parts of batches the manifest never recorded (a killed
@@ -484,12 +484,14 @@ class Store:
         since: datetime | None = None,
         until: datetime | None = None,
         serials: Sequence[str] | None = None,
-    ) -> pd.DataFrame:
+        as_table: bool = False,
+    ) -> pd.DataFrame | pa.Table:
         """Rows of ``table`` with ``since <= time < until`` (and ``serial`` among ``serials`` when
         given); only the days in range are opened.
 
         Timestamps come back tz-aware UTC; integer columns holding nulls come back as float64
-        with NaN (pandas' default), booleans holding nulls as object.
+        with NaN (pandas' default), booleans holding nulls as object. ``as_table``: the Arrow
+        table instead, in the table's schema.
         """
         schema, time_column, _ = TABLES[table]
         self.upgrade()
@@ -497,7 +499,8 @@ class Store:
         unknown = [c for c in wanted if c not in schema.names]
         if unknown:
             raise KeyError(f"{table} has no column(s) {', '.join(unknown)}")
-        empty = schema.empty_table().select(wanted).to_pandas()
+        empty = schema.empty_table().select(wanted)
+        empty = empty if as_table else empty.to_pandas()
         first, last = self._sane_window()
         low, high = first, last
         if since is not None:
@@ -517,7 +520,8 @@ class Store:
         if serials is not None:
             condition = condition & ds.field("serial").isin(pa.array(list(serials), pa.string()))
         dataset = ds.dataset([str(f) for f in files], schema=schema, format="parquet")
-        return dataset.to_table(columns=wanted, filter=condition).to_pandas()
+        rows = dataset.to_table(columns=wanted, filter=condition)
+        return rows if as_table else rows.to_pandas()
 
     def last_times(self, table: str, key: str) -> pd.DataFrame:
         """The newest time of every ``key`` value over the table's whole history (two columns read;
