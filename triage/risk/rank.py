@@ -128,8 +128,12 @@ def rank_drives(
         if column not in drives:
             drives[column] = None
     drives = drives.merge(summarise_flags(flags), on="serial", how="left")
-    for column in ("categories", "actions", "rules", "evidence"):
-        drives[column] = [v if isinstance(v, list) else [] for v in drives[column]]
+    unflagged = np.flatnonzero(drives["rules"].isna().to_numpy())
+    for column in ("categories", "actions", "rules", "evidence"):  # a fresh empty list per unflagged drive
+        values = drives[column].to_numpy(dtype=object).copy()
+        for i in unflagged.tolist():
+            values[i] = []
+        drives[column] = values
     for column in ("severity", "category"):
         drives[column] = drives[column].astype(object).where(drives[column].notna(), None)
     if p_fail is not None:

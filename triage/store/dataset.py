@@ -562,6 +562,12 @@ class Store:
         """Every day partition name in the sane window, oldest first (committed or not)."""
         return self._day_names(table)
 
+    def later_days(self, table: str) -> list[str]:
+        """Day partitions dated after the sane window (they become readable as the clock moves)."""
+        last = self._sane_window()[1].date()
+        return [name for name in self.odd_days(table) if (day := _day_of(name)) is not None and day > last
+                and day.isoformat() == name]
+
     def all_parts(self, table: str, day: str | None = None) -> list[Path]:
         """Committed Parquet files of ``table`` (of one ``day``, or of every day in the sane window)."""
         days = [day] if day is not None else self._day_names(table)
