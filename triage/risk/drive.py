@@ -100,7 +100,7 @@ def drive_story(store, serial: str, ruleset, *, config=None, model=_AUTO,
     """
     history = store.read("snapshots", serials=[serial])
     if history.empty:
-        known = store.read("snapshots", columns=["serial"])["serial"].unique()
+        known = store.current_state(columns=[], days_back=0)[0].sightings["serial"].to_pylist()  # no scan
         raise UnknownDrive(serial, close_serials(serial, known))
     history = history.sort_values("taken_at", kind="stable").reset_index(drop=True)
     newest = history.iloc[-1]
