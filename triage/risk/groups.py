@@ -129,12 +129,16 @@ def member_probabilities(p_fail: pd.Series, severity: pd.Series, group: pd.Serie
     its group's rebuild window (``window_probability``; none without a model, a horizon or a
     group), combined with its severity's prior. Same arithmetic as one drive at a time."""
     rebuild_days = {g: config.for_group(g).rebuild_hours / 24.0 for g in pd.unique(group) if isinstance(g, str)}
+    if horizon_days is not None and horizon_days <= 0:
+        raise ValueError(f"horizon_days must be positive, got {horizon_days}")
     out = []
     for p, s, g in zip(p_fail.tolist(), severity.tolist(), group.tolist()):
-        p_window = None
-        if horizon_days and not pd.isna(p) and isinstance(g, str):
-            p_window = window_probability(p, horizon_days, rebuild_days[g])
-        out.append(member_probability(p_window, s))
+        prior = SEVERITY_REBUILD_PRIOR.get(s, 0.0)
+        if horizon_days and p == p and p is not None and isinstance(g, str):  # p == p: not NaN
+            p_window = 1.0 - (1.0 - float(p)) ** (rebuild_days[g] / horizon_days)  # window_probability
+            out.append(1.0 - (1.0 - p_window) * (1.0 - prior))  # member_probability
+        else:
+            out.append(1.0 - (1.0 - 0.0) * (1.0 - prior))
     return out
 
 
@@ -257,7 +261,7 @@ def group_risk(members: pd.DataFrame, lost: pd.DataFrame, config: GroupConfig) -
         a lone weak drive.
     """
     importance = {}
-    lost_count = lost.groupby("group").size() if len(lost) else pd.Series(dtype=int)
+    lost_count = lost.groupby("group").size().to_dict() if len(lost) else {}
     members = members.dropna(subset=["group"])
     codes, names = pd.factorize(members["group"], sort=True)
     order = np.argsort(codes, kind="stable")  # each group's members in their given order

@@ -151,7 +151,7 @@ def rank_drives(
     drives["group_importance"] = drives["serial"].map(importance).fillna(0.0)
     drives["p_group_loss"] = drives["group"].map(by_group["p_group_loss"]).astype(float)
     drives["degraded"] = drives["group"].map(by_group["degraded"]).eq(True)
-    drives["score"] = risk_scores(drives["severity"].map(lambda s: SEVERITY_WEIGHT.get(s, 0.0)).to_numpy(dtype=float),
+    drives["score"] = risk_scores(np.array([SEVERITY_WEIGHT.get(s, 0.0) for s in drives["severity"].tolist()]),
                                   drives["p_fail"].to_numpy(dtype=float), drives["group_importance"].to_numpy(dtype=float))
     drives["group_first"], group_notes = _first_in_degraded_group(drives, groups)
     drives["action"] = [
@@ -169,7 +169,7 @@ def rank_drives(
                                ascending=[True, False, False, True, True], kind="stable")
     drives = drives.reset_index(drop=True)
     drives["rank"] = range(1, len(drives) + 1)
-    drives["group_first"] = pd.Series([None if pd.isna(x) else int(x) for x in drives["group_first"]],
+    drives["group_first"] = pd.Series([None if x != x or x is None else int(x) for x in drives["group_first"].tolist()],
                                       index=drives.index, dtype=object)
     return drives[RANK_COLUMNS], groups
 
