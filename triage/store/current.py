@@ -275,8 +275,10 @@ def load(root: Path, batch: str | None, batches: int, columns: list[str] | None 
         tables = {}
         for part, schema in _PARTS.items():
             wanted = columns if part == "recent" and columns is not None else schema.names
-            window = [("taken_at", ">=", since)] if part == "recent" and since is not None else None
-            table = pq.read_table(folder / files[part], columns=wanted, filters=window)
+            if part == "recent" and since is not None:
+                table = _read_since(folder / files[part], wanted, since)
+            else:
+                table = pq.read_table(folder / files[part], columns=wanted)
             if not table.schema.equals(pa.schema([schema.field(c) for c in wanted])):
                 raise ValueError(f"{files[part]} does not hold the columns of {part}")
             tables[part] = table
@@ -287,6 +289,23 @@ def load(root: Path, batch: str | None, batches: int, columns: list[str] | None 
         raise
     except (OSError, ValueError, KeyError, TypeError, pa.ArrowException) as exc:
         raise StaleState(f"{path}: unreadable ({type(exc).__name__}: {exc})") from None
+
+
+def _read_since(path: Path, columns: list[str], since: datetime) -> pa.Table:
+    """The rows of a recent-window file taken at or after ``since``: only the row groups whose
+    newest capture is that late are read (the file is in time order), one at a time."""
+    source = pq.ParquetFile(path, pre_buffer=False)
+    stamp = source.schema_arrow.get_field_index("taken_at")
+    low = pa.scalar(since, TIMESTAMP)
+    parts = [SNAPSHOTS.empty_table().select(columns)]
+    for group in range(source.metadata.num_row_groups):
+        stats = source.metadata.row_group(group).column(stamp).statistics
+        if stats is not None and stats.has_min_max and stats.max < since:
+            continue
+        rows = source.read_row_group(group, columns=[*columns, "taken_at"] if "taken_at" not in columns else columns)
+        rows = rows.filter(pc.greater_equal(rows["taken_at"], low))
+        parts.append(rows.select(columns))
+    return pa.concat_tables(parts)
 
 
 def _iso(moment: datetime | None) -> str | None:
