@@ -130,9 +130,19 @@ def commit_cost(root: Path) -> tuple[float, float, int]:
         spent["state"] += time.perf_counter() - t
 
     store._update_current = timed
+    manifest = (root / "_manifest.jsonl").read_text()
     t = time.perf_counter()
     store.commit({"snapshots": night})
-    return time.perf_counter() - t, spent["state"], night.num_rows
+    seconds = time.perf_counter() - t
+    added = pc_day(later)  # put the store back as generated
+    shutil.rmtree(root / "snapshots" / f"day={added}")
+    (root / "_manifest.jsonl").write_text(manifest)
+    shutil.rmtree(root / current.CURRENT_DIR, ignore_errors=True)
+    return seconds, spent["state"], night.num_rows
+
+
+def pc_day(stamps: pa.ChunkedArray) -> str:
+    return pd.Timestamp(pa.compute.min(stamps).as_py()).strftime("%Y-%m-%d")
 
 
 def million_state(root: Path, n_drives: int = 1_000_000, nights: int = 9, seed: int = 11) -> None:
@@ -151,18 +161,20 @@ def million_state(root: Path, n_drives: int = 1_000_000, nights: int = 9, seed: 
     folder = root / current.CURRENT_DIR
     scratch = root / "scratch"
     folder.mkdir(parents=True)
-    names = {part: f"{part}-1-bench.parquet" for part in ("recent", "sightings", "removals")}
-    with pq.ParquetWriter(folder / names["recent"], SNAPSHOTS, compression="lz4") as out:
-        for night in range(nights):
-            grow = (pending > 0) & (rng.uniform(size=n_drives) < 0.1)
-            pending[grow] += 3
-            temperature = np.round(temp_mean + rng.normal(0, 1.2, n_drives))
-            write_day(scratch, night, rows, serial, model_ix, bus, age0 + 24.0 * night, temperature, reallocated,
-                      pending, uncorrectable, minute)
-            day = next((scratch).glob(f"day=*/part-bench.parquet"))
-            table = pq.read_table(day, schema=SNAPSHOTS)
-            out.write_table(table, row_group_size=current.RECENT_ROW_GROUP)
-            shutil.rmtree(day.parent)
+    names = {"recent": {}, "sightings": "sightings-1-bench.parquet", "removals": "removals-1-bench.parquet"}
+    for night in range(nights):  # one file per night, as Store.commit keeps them
+        grow = (pending > 0) & (rng.uniform(size=n_drives) < 0.1)
+        pending[grow] += 3
+        temperature = np.round(temp_mean + rng.normal(0, 1.2, n_drives))
+        write_day(scratch, night, rows, serial, model_ix, bus, age0 + 24.0 * night, temperature, reallocated,
+                  pending, uncorrectable, minute)
+        day = next(scratch.glob("day=*/part-bench.parquet"))
+        table = pq.read_table(day, schema=SNAPSHOTS)
+        table = table.take(pa.compute.sort_indices(table, sort_keys=[("taken_at", "ascending"), ("serial", "ascending")]))
+        name = f"recent-{day.parent.name[4:]}-bench.parquet"
+        pq.write_table(table, folder / name, compression="lz4")
+        names["recent"][day.parent.name[4:]] = name
+        shutil.rmtree(day.parent)
     pq.write_table(table.select(current.SIGHTING_COLUMNS), folder / names["sightings"])
     pq.write_table(REMOVALS.empty_table(), folder / names["removals"])
     shutil.rmtree(scratch, ignore_errors=True)

@@ -152,7 +152,8 @@ def test_an_unreadable_or_foreign_state_is_never_trusted(tmp_path, damage):
     if damage == "json":
         (folder / current.STATE_FILE).write_text("{not json")
     elif damage == "parquet":
-        (folder / meta["files"]["recent"]).write_bytes(b"PAR1 this is not parquet PAR1")
+        newest_day = max(meta["files"]["recent"])
+        (folder / meta["files"]["recent"][newest_day]).write_bytes(b"PAR1 this is not parquet PAR1")
     elif damage == "missing-file":
         (folder / meta["files"]["sightings"]).unlink()
     else:

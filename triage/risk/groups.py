@@ -219,7 +219,7 @@ def lost_members(snapshots: pd.DataFrame, removals: pd.DataFrame) -> pd.DataFram
     if rows.num_rows == 0:
         return pd.DataFrame(columns=columns)
     # each member's last sighting in its group (each field's last known value, as pandas' groupby last)
-    ordered = rows.sort_by([("taken_at", "ascending")])
+    ordered = in_time_order(rows)
     last = ordered.group_by(["group", "serial"], use_threads=False).aggregate(
         [("host", "last"), ("slot", "last"), ("taken_at", "last")]).to_pandas()
     last = last.rename(columns={"host_last": "host", "slot_last": "slot", "taken_at_last": "taken_at"})
@@ -244,6 +244,17 @@ def lost_members(snapshots: pd.DataFrame, removals: pd.DataFrame) -> pd.DataFram
                              "index"]
         candidates = candidates[~candidates.index.isin(set(replaced)) | candidates["slot"].isna()]
     return candidates.rename(columns={"taken_at": "last_seen"})[columns].reset_index(drop=True)
+
+
+def in_time_order(rows: pa.Table) -> pa.Table:
+    """``rows`` sorted by ``taken_at`` (a stable sort); as they are when already so (the current
+    state's recent window is stored in time order)."""
+    stamps = rows["taken_at"].combine_chunks() if rows.num_rows else None
+    if stamps is not None and stamps.null_count == 0:
+        values = stamps.cast(pa.int64()).to_numpy()
+        if np.all(values[1:] >= values[:-1]):
+            return rows
+    return rows.sort_by([("taken_at", "ascending")])
 
 
 # -- the group table --------------------------------------------------------------------------

@@ -21,6 +21,7 @@ import pyarrow.compute as pc
 from triage.risk.groups import (
     GroupConfig,
     group_risk,
+    in_time_order,
     lost_members,
     member_probabilities,
 )
@@ -335,11 +336,15 @@ def rank_store(
         gone |= set(latest.loc[left.fillna(False).astype(bool), "serial"])
     latest = latest[~latest["serial"].isin(gone)]
 
+    scored = scoring_rows(recent) if model is not None else None
     rule_columns = None if columns is None else ["serial", "taken_at", *sorted(getattr(ruleset, "fields", ()))]
-    flags = evaluate(ruleset, (recent if rule_columns is None else recent.select(rule_columns)).to_pandas(), now=as_of)
+    history = (recent if rule_columns is None else recent.select(rule_columns)).to_pandas()
+    del recent, state  # the window's Arrow copy is not needed past here (memory: one copy at a time)
+    flags = evaluate(ruleset, history, now=as_of)
+    del history
     p_fail, horizon = None, None
     if model is not None:
-        p_fail = model.predict_fail_probability(latest, horizon_days=None, history=scoring_rows(recent))
+        p_fail = model.predict_fail_probability(latest, horizon_days=None, history=scored)
         horizon = float(model.horizon_days)
     else:
         notes.append("no saved survival model: ranking on rules alone (p_fail is empty)")
@@ -383,7 +388,7 @@ def last_values(history: pa.Table, columns: list[str]) -> pd.DataFrame:
     ``history.to_pandas().sort_values("taken_at").groupby("serial", as_index=False).last()``
     gives (dtypes included), computed by Arrow without the per-row frame."""
     others = [c for c in columns if c != "serial"]
-    rows = history.select(["serial", *others]).filter(pc.is_valid(history["serial"])).sort_by([("taken_at", "ascending")])
+    rows = in_time_order(history.select(["serial", *others]).filter(pc.is_valid(history["serial"])))
     last = rows.group_by("serial", use_threads=False).aggregate([(c, "last") for c in others])
     frame = last.to_pandas().rename(columns={f"{c}_last": c for c in others})
     for column in others:  # the dtype the whole column has in pandas (nulls make ints float, bools object)
@@ -404,13 +409,14 @@ def scoring_rows(history: pa.Table) -> pd.DataFrame:
     rows = history.select(["serial", "taken_at"]).append_column("_row", pa.array(np.arange(history.num_rows)))
     rows = rows.filter(pc.is_valid(rows["serial"]))
     cut = pc.max(rows["taken_at"]).as_py() - timedelta(days=GROWTH_DAYS)
-    ordered = rows.sort_by([("taken_at", "ascending")])
+    ordered = in_time_order(rows)
     ends = ordered.group_by("serial", use_threads=False).aggregate([("_row", "first"), ("_row", "last")])
     early = ordered.filter(pc.less_equal(ordered["taken_at"], pa.scalar(cut, ordered.schema.field("taken_at").type)))
     base = early.group_by("serial", use_threads=False).aggregate([("_row", "last")])
-    keep = np.unique(np.concatenate([ends["_row_first"].to_numpy(), ends["_row_last"].to_numpy(),
-                                     base["_row_last"].to_numpy()]))
-    return history.take(pa.array(keep)).to_pandas()
+    keep = np.zeros(history.num_rows, dtype=bool)
+    for rows_kept in (ends["_row_first"], ends["_row_last"], base["_row_last"]):
+        keep[rows_kept.to_numpy()] = True
+    return history.take(pa.array(np.flatnonzero(keep))).to_pandas()
 
 
 def silent_drives(sightings: pd.DataFrame, removals: pd.DataFrame, as_of: datetime,

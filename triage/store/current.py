@@ -36,7 +36,7 @@ from __future__ import annotations
 import json
 import os
 import secrets
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
@@ -45,6 +45,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
+from triage.store.files import fsync_dir, fsync_file
 from triage.store.schema import REMOVALS, SNAPSHOTS, TABLES, TIMESTAMP
 
 CURRENT_DIR = "current"
@@ -57,8 +58,6 @@ STATE_VERSION = 1
 RECENT_DAYS = 15
 #: The columns of a drive's newest sighting.
 SIGHTING_COLUMNS = ["serial", "taken_at", "model", "host", "slot", "group"]
-#: Rows per Parquet row group of the recent window (about a night of a 100k-drive fleet).
-RECENT_ROW_GROUP = 131_072
 SIGHTINGS = pa.schema([SNAPSHOTS.field(name) for name in SIGHTING_COLUMNS])
 _PARTS = {"recent": SNAPSHOTS, "sightings": SIGHTINGS, "removals": REMOVALS}
 
@@ -79,6 +78,10 @@ class CurrentState:
     next_future: datetime | None  # the earliest stored row beyond ``ceiling`` (it becomes readable later)
     batch: str | None  # the manifest's last batch this state reflects
     batches: int  # how many batches the manifest held
+    #: "sightings" / "removals" -> the saved file the table was read from and still equals
+    unchanged: dict = field(default_factory=dict)
+    #: day -> saved file of the recent window's days not loaded into ``recent`` (still part of it)
+    kept_days: dict = field(default_factory=dict)
 
     def fits_clock(self, ceiling: datetime) -> bool:
         """True when a reader whose latest readable moment is ``ceiling`` sees the same rows."""
@@ -162,12 +165,17 @@ def merge(state: CurrentState, snapshots: pa.Table | None, removals: pa.Table | 
     sightings = state.sightings
     if new_rows.num_rows:
         sightings = _newest_per_serial(pa.concat_tables([sightings, new_rows.select(SIGHTING_COLUMNS)]))
+    touched = {"sightings"} if new_rows.num_rows else set()
+    if new_removals.num_rows:
+        touched.add("removals")
     return CurrentState(
-        recent=recent.combine_chunks(), sightings=sightings.combine_chunks(),
-        removals=pa.concat_tables([state.removals, new_removals]).combine_chunks(),
+        recent=recent, sightings=sightings,
+        removals=pa.concat_tables([state.removals, new_removals]),
         newest=newest, ceiling=ceiling,
         next_future=_min_time(state.next_future, future_rows, future_removals),
-        batch=state.batch, batches=state.batches)
+        batch=state.batch, batches=state.batches,
+        unchanged={part: name for part, name in state.unchanged.items() if part not in touched},
+        kept_days=dict(state.kept_days))
 
 
 def build(store) -> CurrentState:
@@ -219,41 +227,62 @@ def _read_parts(store, table: str, files: list[Path], columns: list[str] | None 
 
 # -- saving and loading ------------------------------------------------------------------------
 def save(root: Path, state: CurrentState) -> None:
-    """Write ``state`` under ``root/current`` atomically (module docstring); old files go last."""
+    """Write ``state`` under ``root/current`` atomically (module docstring); old files go last.
+
+    The recent window is one file per UTC day, rows in time order: a commit rewrites the days it
+    added rows to, keeps the files of the others (``kept_days``) and drops the days the window
+    left; sightings and removals are rewritten only when they changed (``unchanged``)."""
     folder = Path(root) / CURRENT_DIR
     folder.mkdir(parents=True, exist_ok=True)
     tag = f"{state.batches}-{secrets.token_hex(4)}"
-    names = {}
-    for part in _PARTS:
-        names[part] = f"{part}-{tag}.parquet"
-        temp = folder / f".{names[part]}.tmp"
-        table = getattr(state, part)
-        if part == "recent":  # in time order, so that a reader wanting fewer days skips row groups
-            table = table.take(pc.sort_indices(table, sort_keys=[("taken_at", "ascending"), ("serial", "ascending")]))
-        # lz4: a third larger than zstd, quicker to read, and this folder is read on every rank
-        pq.write_table(table, temp, compression="lz4", row_group_size=RECENT_ROW_GROUP)
-        _fsync(temp)
-        os.replace(temp, folder / names[part])
+    first_day = recent_floor(state.newest).date().isoformat() if state.newest is not None else ""
+    days = {day: name for day, name in state.kept_days.items() if day >= first_day and (folder / name).is_file()}
+    recent = state.recent
+    if recent.num_rows:
+        stamps = recent["taken_at"]
+        for day in sorted(set(pc.strftime(stamps, format="%Y-%m-%d").unique().to_pylist())):
+            start = pa.scalar(datetime.fromisoformat(day).replace(tzinfo=timezone.utc), TIMESTAMP)
+            end = pa.scalar(datetime.fromisoformat(day).replace(tzinfo=timezone.utc) + timedelta(days=1), TIMESTAMP)
+            rows = recent.filter(pc.and_(pc.greater_equal(stamps, start), pc.less(stamps, end)))
+            rows = rows.take(pc.sort_indices(rows, sort_keys=[("taken_at", "ascending"), ("serial", "ascending")]))
+            days[day] = _write(folder, f"recent-{day}-{tag}.parquet", rows)
+    names = {"recent": dict(sorted(days.items()))}
+    for part in ("sightings", "removals"):
+        if part in state.unchanged and (folder / state.unchanged[part]).is_file():
+            names[part] = state.unchanged[part]
+        else:
+            names[part] = _write(folder, f"{part}-{tag}.parquet", getattr(state, part))
     meta = {"state_version": STATE_VERSION, "recent_days": RECENT_DAYS, "batch": state.batch,
             "batches": state.batches, "newest": _iso(state.newest), "ceiling": _iso(state.ceiling),
             "next_future": _iso(state.next_future), "files": names}
     temp = folder / f".{STATE_FILE}.tmp"
     temp.write_text(json.dumps(meta, sort_keys=True) + "\n", encoding="utf-8")
-    _fsync(temp)
+    fsync_file(temp)
     os.replace(temp, folder / STATE_FILE)
-    _fsync(folder)
-    keep = set(names.values()) | {STATE_FILE}
+    fsync_dir(folder)
+    keep = {*names["recent"].values(), names["sightings"], names["removals"], STATE_FILE}
     for entry in os.listdir(folder):
         if entry not in keep:
             (folder / entry).unlink(missing_ok=True)
 
 
+def _write(folder: Path, name: str, table: pa.Table) -> str:
+    """One file of the state, written under a dot-name, flushed, renamed; returns ``name``."""
+    temp = folder / f".{name}.tmp"
+    # lz4: a third larger than zstd, quicker to read, and these files are read on every rank
+    pq.write_table(table, temp, compression="lz4")
+    fsync_file(temp)
+    os.replace(temp, folder / name)
+    return name
+
+
 def load(root: Path, batch: str | None, batches: int, columns: list[str] | None = None,
-         days_back: int | None = None) -> CurrentState:
+         days_back: int | None = None, only_days: set[str] | None = None) -> CurrentState:
     """The saved state if it reflects the manifest's ``batch`` / ``batches``; raises StaleState
     saying why not. ``columns``: the recent window's columns to read (default: all);
-    ``days_back``: only its rows taken on or after the newest capture's UTC day minus that many
-    days (``window_start``; default: all)."""
+    ``days_back``: only its days from the newest capture's UTC day minus that many days
+    (``window_start``); ``only_days``: only those days, the others listed in ``kept_days``
+    (default: every day)."""
     folder = Path(root) / CURRENT_DIR
     path = folder / STATE_FILE
     if not path.is_file():
@@ -271,41 +300,32 @@ def load(root: Path, batch: str | None, batches: int, columns: list[str] | None 
                              f"the manifest ends at {batch!r} of {batches}")
         files = meta["files"]
         newest = _moment(meta["newest"])
-        since = window_start(newest, days_back) if days_back is not None and newest is not None else None
-        tables = {}
-        for part, schema in _PARTS.items():
-            wanted = columns if part == "recent" and columns is not None else schema.names
-            if part == "recent" and since is not None:
-                table = _read_since(folder / files[part], wanted, since)
-            else:
-                table = pq.read_table(folder / files[part], columns=wanted)
-            if not table.schema.equals(pa.schema([schema.field(c) for c in wanted])):
+        first = window_start(newest, days_back).date().isoformat() if days_back is not None and newest else ""
+        wanted = columns if columns is not None else SNAPSHOTS.names
+        shape = pa.schema([SNAPSHOTS.field(c) for c in wanted])
+        parts, kept = [shape.empty_table()], {}
+        for day, name in sorted(files["recent"].items()):
+            if day < first or (only_days is not None and day not in only_days):
+                kept[day] = name
+                continue
+            table = pq.read_table(folder / name, columns=wanted)
+            if not table.schema.equals(shape):
+                raise ValueError(f"{name} does not hold the columns of the recent window")
+            parts.append(table)
+        tables = {"recent": pa.concat_tables(parts)}
+        for part in ("sightings", "removals"):
+            table = pq.read_table(folder / files[part])
+            if not table.schema.equals(_PARTS[part]):
                 raise ValueError(f"{files[part]} does not hold the columns of {part}")
             tables[part] = table
         return CurrentState(tables["recent"], tables["sightings"], tables["removals"],
                             newest, _moment(meta["ceiling"]), _moment(meta["next_future"]),
-                            meta["batch"], meta["batches"])
+                            meta["batch"], meta["batches"],
+                            unchanged={part: files[part] for part in ("sightings", "removals")}, kept_days=kept)
     except StaleState:
         raise
     except (OSError, ValueError, KeyError, TypeError, pa.ArrowException) as exc:
         raise StaleState(f"{path}: unreadable ({type(exc).__name__}: {exc})") from None
-
-
-def _read_since(path: Path, columns: list[str], since: datetime) -> pa.Table:
-    """The rows of a recent-window file taken at or after ``since``: only the row groups whose
-    newest capture is that late are read (the file is in time order), one at a time."""
-    source = pq.ParquetFile(path, pre_buffer=False)
-    stamp = source.schema_arrow.get_field_index("taken_at")
-    low = pa.scalar(since, TIMESTAMP)
-    parts = [SNAPSHOTS.empty_table().select(columns)]
-    for group in range(source.metadata.num_row_groups):
-        stats = source.metadata.row_group(group).column(stamp).statistics
-        if stats is not None and stats.has_min_max and stats.max < since:
-            continue
-        rows = source.read_row_group(group, columns=[*columns, "taken_at"] if "taken_at" not in columns else columns)
-        rows = rows.filter(pc.greater_equal(rows["taken_at"], low))
-        parts.append(rows.select(columns))
-    return pa.concat_tables(parts)
 
 
 def _iso(moment: datetime | None) -> str | None:
@@ -319,11 +339,3 @@ def _moment(text) -> datetime | None:
     if moment.tzinfo is None:
         raise ValueError(f"time {text!r} has no UTC offset")
     return moment
-
-
-def _fsync(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)

@@ -62,6 +62,8 @@ import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
 from triage.store import current
+from triage.store.files import fsync_dir as _fsync_dir
+from triage.store.files import fsync_file as _fsync_file
 from triage.store.schema import PARTITION_COLUMN, RENAMED_SINCE, STORE_FORMAT, TABLES
 
 MANIFEST = "_manifest.jsonl"
@@ -350,12 +352,14 @@ class Store:
         earliest, ceiling = self._sane_window()
         try:
             try:
-                state = current.load(self.root, before, batches - 1)
+                new = {t: pa.concat_tables(p) if p else None for t, p in parts.items()}
+                snapshots = new.get("snapshots")
+                days = set(pc.strftime(snapshots["taken_at"], format="%Y-%m-%d").unique().to_pylist()) \
+                    if snapshots is not None and snapshots.num_rows else set()
+                state = current.load(self.root, before, batches - 1, only_days=days)  # the days it adds to
                 if not state.fits_clock(ceiling):
                     raise current.StaleState("made under another clock")
-                new = {t: pa.concat_tables(p) if p else None for t, p in parts.items()}
-                state = current.merge(state, new.get("snapshots"), new.get("removals"),
-                                      earliest=earliest, ceiling=ceiling)
+                state = current.merge(state, snapshots, new.get("removals"), earliest=earliest, ceiling=ceiling)
             except current.StaleState:
                 state = current.build(self)
             state.batch, state.batches = batch, batches
@@ -705,19 +709,3 @@ def _holder(fd: int) -> str:
     except (OSError, ValueError, IndexError):
         return ""
     return f" (pid {pid})"
-
-
-def _fsync_file(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
-def _fsync_dir(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY | os.O_DIRECTORY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
