@@ -47,6 +47,7 @@ from triage.store import current  # noqa: E402
 from triage.store.schema import REMOVALS, SNAPSHOTS  # noqa: E402
 
 REPO = Path(__file__).resolve().parent.parent
+TIME = shutil.which("time", path="/usr/bin:/bin")  # GNU time, to read each command's own peak RSS
 #: The last commit before the current-state table: the partition-scanning rank.
 OLD_REV = "21ef913"
 RUNS = 3
@@ -69,12 +70,18 @@ def register(root: Path) -> None:
 def run(argv: list[str], env: dict | None = None) -> tuple[float, float, int, float]:
     """(wall seconds, peak RSS in MB, exit code, CPU seconds) of one fresh process (output dropped)."""
     start = time.perf_counter()
+    # Linux carries the peak RSS of the process that forked into the child's across exec, so the
+    # command is started by GNU time (a small process) when there is one, which reports its peak.
+    report = Path(tempfile.mkstemp(prefix="rank-bench-rss-")[1])
+    launcher = [TIME, "-q", "-f", "%M", "-o", str(report)] if TIME else []
     # cwd: not the repository, whose ./triage would shadow the package on PYTHONPATH
-    proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env,
+    proc = subprocess.Popen([*launcher, *argv], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env,
                             cwd=tempfile.gettempdir())
     _, status, usage = os.wait4(proc.pid, 0)
     wall = time.perf_counter() - start
-    return wall, usage.ru_maxrss / 1024, os.waitstatus_to_exitcode(status), usage.ru_utime + usage.ru_stime
+    peak_kb = int(report.read_text().split()[-1]) if TIME and report.read_text().strip() else usage.ru_maxrss
+    report.unlink()
+    return wall, peak_kb / 1024, os.waitstatus_to_exitcode(status), usage.ru_utime + usage.ru_stime
 
 
 def measure(argv: list[str], env: dict | None = None, runs: int = RUNS) -> dict:
@@ -192,18 +199,26 @@ def main() -> None:
     parser.add_argument("--keep", type=Path, help="generate into / reuse this folder instead of a temporary one")
     parser.add_argument("--million", action="store_true", help="also rank 1,000,000 drives (a state-only store)")
     parser.add_argument("--old", default=OLD_REV, help="git revision of the baseline code (default %(default)s)")
+    parser.add_argument("--generate", nargs=3, help=argparse.SUPPRESS)
     args = parser.parse_args()
+    if args.generate:
+        root, drives, nights = Path(args.generate[0]), int(args.generate[1]), int(args.generate[2])
+        if nights:
+            print(generate_store(root, drives, nights), file=sys.stderr)
+            register(root)
+        else:
+            million_state(root, drives)
+        return
     work = args.keep or Path(tempfile.mkdtemp(prefix="triage-rank-bench-"))
     python = sys.executable
     stores = {"10k x 30": (10_000, 30), "100k x 30": (100_000, 30), "100k x 180": (100_000, 180)}
     try:
         for label, (drives, nights) in stores.items():
             root = work / label.replace(" ", "")
-            if not (root / "snapshots").is_dir():
+            if not (root / "snapshots").is_dir():  # in a child, so that this process stays small
                 t = time.perf_counter()
-                counts = generate_store(root, drives, nights)
-                register(root)
-                print(f"generated {label}: {counts} in {time.perf_counter() - t:.0f} s", file=sys.stderr)
+                subprocess.run([python, __file__, "--generate", str(root), str(drives), str(nights)], check=True)
+                print(f"generated {label} in {time.perf_counter() - t:.0f} s", file=sys.stderr)
         model_home = work / "100kx30" / "models"
         if not model_home.is_dir():
             t = time.perf_counter()
@@ -216,7 +231,7 @@ def main() -> None:
                 shutil.copytree(model_home, target)
         if args.million and not (work / "1Mx9" / current.CURRENT_DIR).is_dir():
             t = time.perf_counter()
-            million_state(work / "1Mx9")
+            subprocess.run([python, __file__, "--generate", str(work / "1Mx9"), "1000000", "0"], check=True)
             print(f"generated the 1M-drive state in {time.perf_counter() - t:.0f} s", file=sys.stderr)
             shutil.copytree(model_home, work / "1Mx9" / "models")
 
@@ -244,9 +259,6 @@ def main() -> None:
             floor = measure([python, "-c", FLOOR, str(work / "1Mx9")], runs=1)
             print(f"     1M x 9: rank {big['seconds']:.2f} s ({big['cpu']:.2f} s CPU), {big['peak_mb']:.0f} MB | floor "
                   f"{floor['seconds']:.2f} s, {floor['peak_mb']:.0f} MB (one run each; state only, no partitions)")
-        seconds, state, rows = commit_cost(work / "100kx30")  # last: it adds a night to that store
-        print(f"commit of one more night ({rows:,} captures) to 100k x 30: {seconds:.1f} s, of which the "
-              f"state update {state:.1f} s")
         small, mid, long = figures["10k x 30"], figures["100k x 30"], figures["100k x 180"]
         # the two histories alternately, so that a change in the machine's load hits both alike
         pairs = [(run(rank_argv(python, work / "100kx30")), run(rank_argv(python, work / "100kx180")))
@@ -263,6 +275,9 @@ def main() -> None:
         print(growth)
         print(f"targets at 100k: < 1.5 s -> {'met' if mid['seconds'] < 1.5 else 'MISSED'}; "
               f"< 600 MB -> {'met' if mid['peak_mb'] < 600 else 'MISSED'}")
+        seconds, state, rows = commit_cost(work / "100kx30")  # last: this process reads a night's rows
+        print(f"commit of one more night ({rows:,} captures) to 100k x 30: {seconds:.1f} s, of which the "
+              f"state update {state:.1f} s")
     finally:
         if args.keep is None:
             shutil.rmtree(work, ignore_errors=True)
