@@ -218,3 +218,13 @@ def test_a_reader_that_cannot_take_the_lock_still_gets_the_rebuilt_state(tmp_pat
         state, note = Store(tmp_path, now=fixed_clock).current_state()
     assert "rebuilt" in note and state.sightings.num_rows == len(SERIALS)
     assert not (tmp_path / current.CURRENT_DIR / current.STATE_FILE).exists()  # nothing written unlocked
+
+
+def test_a_state_that_cannot_be_written_never_fails_the_commit(tmp_path):
+    """The commit is its manifest line; the state is kept after it, and rebuilt when it could not be."""
+    snapshots, _ = history(10)
+    store = Store(tmp_path, now=fixed_clock)
+    (tmp_path / current.CURRENT_DIR).write_text("a file where the folder should be")
+    assert store.commit({"snapshots": snapshots})["snapshots"] == len(snapshots)
+    state, note = store.current_state()
+    assert "rebuilt" in note and state.sightings.num_rows == len(SERIALS)

@@ -337,16 +337,21 @@ class Store:
         return written
 
     # -- the current state (triage/store/current.py) --------------------------------------
+    def _batch_ids(self) -> list[str]:
+        """The manifest's batch ids, oldest first."""
+        return [e["batch"] for e in self.manifest() if isinstance(e, dict) and isinstance(e.get("batch"), str)]
+
     def _batches(self) -> tuple[str | None, int]:
         """(the manifest's last batch id, how many batches it records)."""
-        entries = [e["batch"] for e in self.manifest() if isinstance(e, dict) and isinstance(e.get("batch"), str)]
+        entries = self._batch_ids()
         return (entries[-1] if entries else None), len(entries)
 
     def _update_current(self, parts: Mapping[str, list[pa.Table]]) -> None:
         """After a commit's manifest line (writer lock held): merge its new rows into the saved
         state, or rebuild it when the saved one does not reflect the batch before. A failure here
-        (a full disk) leaves the state stale, to be rebuilt on next use: the commit stands."""
-        entries = [e["batch"] for e in self.manifest() if isinstance(e, dict) and isinstance(e.get("batch"), str)]
+        (a full disk, an unreadable file) leaves the state stale, to be rebuilt on next use (which
+        then says what it cannot read): the commit stands."""
+        entries = self._batch_ids()
         batch, batches = entries[-1], len(entries)
         before = entries[-2] if batches > 1 else None
         earliest, ceiling = self._sane_window()
@@ -364,7 +369,7 @@ class Store:
                 state = current.build(self)
             state.batch, state.batches = batch, batches
             current.save(self.root, state)
-        except OSError:
+        except (OSError, ValueError, pa.ArrowException):  # ArrowInvalid is a ValueError, ArrowIOError an OSError
             pass
 
     def current_state(self, columns: list[str] | None = None,
