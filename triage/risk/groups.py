@@ -219,11 +219,8 @@ def lost_members(snapshots: pd.DataFrame, removals: pd.DataFrame) -> pd.DataFram
     if rows.num_rows == 0:
         return pd.DataFrame(columns=columns)
     # each member's last sighting in its group (each field's last known value, as pandas' groupby last)
-    ordered = in_time_order(rows)
-    last = ordered.group_by(["group", "serial"], use_threads=False).aggregate(
-        [("host", "last"), ("slot", "last"), ("taken_at", "last")]).to_pandas()
-    last = last.rename(columns={"host_last": "host", "slot_last": "slot", "taken_at_last": "taken_at"})
-    last = last.dropna(subset=["serial"]).sort_values(["group", "serial"], kind="stable").reset_index(drop=True)
+    last = last_known(in_time_order(rows), ["group", "serial"], ["host", "slot", "taken_at"]).to_pandas()
+    last = last.sort_values(["group", "serial"], kind="stable").reset_index(drop=True)
     group_night = last.groupby("group")["taken_at"].max().dt.floor("D")  # the group's latest capture night
     absent = last["taken_at"].dt.floor("D") < last["group"].map(group_night)
 
@@ -235,8 +232,10 @@ def lost_members(snapshots: pd.DataFrame, removals: pd.DataFrame) -> pd.DataFram
 
     # a replacement: another serial first seen in the same host/slot after the lost one's last sighting
     if len(candidates):
+        near = pc.and_(pc.is_in(rows["host"], pa.array(candidates["host"].dropna().unique(), pa.string())),
+                       pc.is_in(rows["slot"], pa.array(candidates["slot"].dropna().unique(), pa.string())))
         placed = rows.filter(pc.and_(pc.and_(pc.is_valid(rows["host"]), pc.is_valid(rows["slot"])),
-                                     pc.is_valid(rows["serial"])))
+                                     pc.and_(pc.is_valid(rows["serial"]), near)))  # the candidates' slots
         first_seen = placed.group_by(["host", "slot", "serial"]).aggregate([("taken_at", "min")]).to_pandas()
         first_seen = first_seen.rename(columns={"taken_at_min": "taken_at"})
         pairs = candidates.reset_index().merge(first_seen, on=["host", "slot"], suffixes=("", "_other"))
@@ -244,6 +243,40 @@ def lost_members(snapshots: pd.DataFrame, removals: pd.DataFrame) -> pd.DataFram
                              "index"]
         candidates = candidates[~candidates.index.isin(set(replaced)) | candidates["slot"].isna()]
     return candidates.rename(columns={"taken_at": "last_seen"})[columns].reset_index(drop=True)
+
+
+def last_known(rows: pa.Table, keys: list[str], columns: list[str]) -> pa.Table:
+    """One row per distinct ``keys`` (rows with a null key left out): the keys, then each of
+    ``columns``' last non-null value in row order -- what an ordered Arrow group-by ``last``
+    (and pandas' ``groupby().last()``) gives, computed with one index per column."""
+    if not rows.num_rows:
+        return rows.select([*keys, *columns])
+    known = np.ones(rows.num_rows, dtype=bool)
+    for key in keys:
+        known &= rows[key].is_valid().to_numpy(zero_copy_only=False)
+    rows = rows if known.all() else rows.filter(pa.array(known))
+    if not rows.num_rows:
+        return rows.select([*keys, *columns])
+    code = np.zeros(rows.num_rows, dtype=np.int64)
+    for key in keys:  # one integer per key combination
+        column = rows[key].combine_chunks()
+        encoded = pc.dictionary_encode(column) if not pa.types.is_dictionary(column.type) else column
+        code = code * (len(encoded.dictionary) + 1) + encoded.indices.to_numpy(zero_copy_only=False)
+    group = code if len(keys) == 1 else np.unique(code, return_inverse=True)[1]  # one key: codes are 0..n-1
+    position = np.arange(rows.num_rows)
+
+    def last_of(mask: np.ndarray | None) -> pa.Array:
+        last = np.full(group.max() + 1, -1)
+        np.maximum.at(last, group if mask is None else group[mask], position if mask is None else position[mask])
+        return pa.array(last, mask=last < 0)
+
+    every = last_of(None)
+    out = {key: rows[key].take(every) for key in keys}
+    for column in columns:
+        values = rows[column]
+        index = every if values.null_count == 0 else last_of(values.is_valid().to_numpy(zero_copy_only=False))
+        out[column] = values.take(index)
+    return pa.table(out)
 
 
 def in_time_order(rows: pa.Table) -> pa.Table:

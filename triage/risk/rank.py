@@ -22,6 +22,7 @@ from triage.risk.groups import (
     GroupConfig,
     group_risk,
     in_time_order,
+    last_known,
     lost_members,
     member_probabilities,
 )
@@ -386,11 +387,9 @@ def _history_columns(ruleset, model) -> list[str] | None:
 def last_values(history: pa.Table, columns: list[str]) -> pd.DataFrame:
     """Per serial (in serial order), each column's last known value by capture time: what
     ``history.to_pandas().sort_values("taken_at").groupby("serial", as_index=False).last()``
-    gives (dtypes included), computed by Arrow without the per-row frame."""
+    gives (dtypes included), computed on the Arrow table without the per-row frame."""
     others = [c for c in columns if c != "serial"]
-    rows = in_time_order(history.select(["serial", *others]).filter(pc.is_valid(history["serial"])))
-    last = rows.group_by("serial", use_threads=False).aggregate([(c, "last") for c in others])
-    frame = last.to_pandas().rename(columns={f"{c}_last": c for c in others})
+    frame = last_known(in_time_order(history.select(["serial", *others])), ["serial"], others).to_pandas()
     for column in others:  # the dtype the whole column has in pandas (nulls make ints float, bools object)
         kind = history.schema.field(column).type
         if history[column].null_count and pa.types.is_integer(kind):
