@@ -6,7 +6,7 @@ import hashlib
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 from pathlib import Path
-from typing import Callable, Iterable
+from typing import TYPE_CHECKING, Callable, Iterable
 
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -25,6 +25,9 @@ REMOVAL_SUFFIXES = (".csv",)
 COMMIT_LINES = 4 * BATCH_LINES
 #: Rejected lines whose excerpt the report keeps in memory (all of them are in the quarantine).
 REPORT_TEXTS = 100
+
+if TYPE_CHECKING:
+    from triage.engine import _Engine
 
 
 @dataclass
@@ -92,8 +95,13 @@ def ingest_paths(
     progress: Callable[[int, int], None] | None = None,
     now: datetime | None = None,
     workers: int | None = None,
+    engine: "_Engine | None" = None,
 ) -> IngestReport:
     """Ingest files (or directories of them) into ``store``; files already ingested are skipped.
+
+    Capture files are read and decoded as tasks on ``engine`` (triage/engine.py; default: local
+    processes, ``workers`` of them); only this process commits, so every commit is whole
+    whichever engine decoded. ``progress(done, total)`` counts bytes of the files read.
 
     Captures are committed in batches of at most ``COMMIT_LINES`` lines, so memory does not grow
     with the files; a file is listed in the manifest by the commit holding its last line (a run
@@ -120,33 +128,35 @@ def ingest_paths(
     digests = dict(todo)
     removals = [p for p, _ in todo if _kind(p) == "removals"]
     captures = [p for p, _ in todo if _kind(p) == "capture"]
+    total = sum(file_size(p) for p, _ in todo)
     done = 0
+
+    def advance(nbytes: int) -> None:
+        nonlocal done
+        done = min(total, done + nbytes)  # a file that grew while read never overshoots
+        if progress:
+            progress(done, total)
+
     if unreadable:
         _commit(store, report, {}, unreadable, 0, [])
     if removals:
         rows, bad, count = parse_removal_files(removals, now=now)
         _commit(store, report, {"removals": rows}, bad, count, [(p, digests[p]) for p in removals])
-        done += len(removals)
-        if progress:
-            progress(done, len(todo))
+        advance(sum(file_size(p) for p in removals))
     parts: list[CaptureBatch] = []
     finished: list[Path] = []
     held = 0
-    for batch, files_done in capture_parts(captures, workers=workers, now=now):
+    for batch, files_done in capture_parts(captures, engine=engine, workers=workers, now=now):
         parts.append(batch)
         held += batch.lines
         finished += files_done
+        advance(batch.read_bytes)
         if held >= COMMIT_LINES:
             _commit_captures(store, report, parts, [(p, digests[p]) for p in finished])
-            done += len(finished)
             parts, finished, held = [], [], 0
-            if progress:
-                progress(done, len(todo))
     if parts or finished:
         _commit_captures(store, report, parts, [(p, digests[p]) for p in finished])
-        done += len(finished)
-        if progress:
-            progress(done, len(todo))
+    advance(total)
     return report
 
 
