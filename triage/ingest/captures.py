@@ -448,12 +448,11 @@ class _TaskReader:
         while not self.done() and count < max_lines and excerpt_bytes < BATCH_EXCERPT_BYTES:
             piece = self.pieces[self.index]
             starts.setdefault(piece.seq, (self.reader.position, self.reader.next_line))
-            before = self.reader.disk_position
             n, size, piece_done = _read_lines(self.reader, self.lines, piece, pending, rejected,
                                               max_lines - count)
             count += n
             excerpt_bytes += size
-            read_bytes += max(0, self.reader.disk_position - before)
+            read_bytes += self.reader.new_bytes()
             numbered, blank = self.reader.next_line - 1, self.reader.blank_lines
             if piece_done:
                 if piece.stop is None:

@@ -122,10 +122,17 @@ class CaptureLines:
         self.next_line = first_line
         self.blank_lines = 0
         self._disk_position = disk_position
+        self._counted = self.disk_position  # bytes up to here were reported by new_bytes()
 
     @property
     def disk_position(self) -> int:
         return self._disk_position if is_gzip_name(self.path) else self.position
+
+    def new_bytes(self) -> int:
+        """Bytes on disk read since the last call (a range counts from its first line's start)."""
+        moved = max(0, self.disk_position - self._counted)
+        self._counted += moved
+        return moved
 
     def __iter__(self) -> Iterator[tuple[int, bytes | OversizeLine]]:
         with self.path.open("rb") as fh:
@@ -133,7 +140,7 @@ class CaptureLines:
                 yield from self._split(self._tracked(_inflated_blocks(fh), fh), skip=self.start)
                 return
             if self.start:
-                self.start = self.position = line_start_at(fh, self.start)
+                self.start = self.position = self._counted = line_start_at(fh, self.start)
             end = None if self.stop is None else line_start_at(fh, self.stop)
             fh.seek(self.start)
             yield from self._split(_plain_blocks(fh, self.start, end), skip=0)
