@@ -55,7 +55,13 @@ class OversizeLine:
     def extended(self, more: bytes) -> "OversizeLine":
         """The same line with ``more`` bytes after it (the head grows up to ``EXCERPT_BYTES``)."""
         head = self.head if len(self.head) >= EXCERPT_BYTES else (self.head + more[:EXCERPT_BYTES])[:EXCERPT_BYTES]
-        return OversizeLine(self.length + len(more), head, self.blank and not more.strip())
+        return OversizeLine(self.length + len(more), head, self.blank and is_blank(more))
+
+
+def is_blank(data: bytes) -> bool:
+    """Only ASCII white space (or nothing): what ``data.strip()`` would empty, found without
+    copying (``isspace`` stops at the first other byte, the first byte of any capture line)."""
+    return not data or data.isspace()
 
 
 def is_gzip_name(path: Path) -> bool:
@@ -172,7 +178,7 @@ class CaptureLines:
                 else:
                     yield self._number(), line
                 block = block[end + 1:]
-            if not block.strip() and not carry.strip():
+            if is_blank(block) and is_blank(carry):
                 # only blank lines (a "bomb of newlines" is this): counted, not split
                 last = block.rfind(b"\n")
                 if last >= 0:
@@ -188,7 +194,7 @@ class CaptureLines:
                 carry = lines.pop()
                 for line in lines:
                     self.position += len(line) + 1
-                    if not line.strip():
+                    if is_blank(line):
                         self.blank_lines += 1
                         self.next_line += 1
                     elif len(line) > MAX_LINE_BYTES:
@@ -196,7 +202,7 @@ class CaptureLines:
                     else:
                         yield self._number(), line
             if len(carry) > MAX_LINE_BYTES:
-                oversize, carry = OversizeLine(len(carry), carry[:EXCERPT_BYTES], not carry.strip()), b""
+                oversize, carry = OversizeLine(len(carry), carry[:EXCERPT_BYTES], is_blank(carry)), b""
         if oversize is not None:
             self.position += oversize.length
             if oversize.blank:
@@ -204,7 +210,7 @@ class CaptureLines:
                 self.next_line += 1
             else:
                 yield self._number(), oversize
-        elif carry.strip():  # a last line without its newline is still a line
+        elif not is_blank(carry):  # a last line without its newline is still a line
             self.position += len(carry)
             yield self._number(), carry
 

@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import hashlib
+from collections import Counter
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 from pathlib import Path
@@ -19,10 +21,14 @@ from triage.store.dataset import SourceRecord, Store
 #: Name endings, compared without case (``.JSONL``, ``.jsonl.GZ`` are the same kinds).
 CAPTURE_SUFFIXES = (".jsonl", ".jsonl.gz")
 REMOVAL_SUFFIXES = (".csv",)
-#: Captures per commit, at most: a night of a 100k-drive fleet in one or two commits, so each day
-#: gets few Parquet parts, while a batch of decoded rows stays well under 1 GB whatever the size
-#: of the files (benchmarks/ingest.py measures the peak on a 2 GB file).
-COMMIT_LINES = 4 * BATCH_LINES
+#: Captures per commit, at most: a night of a 100k-drive fleet in two commits (the first written
+#: while the second half is decoded), so each day gets few Parquet parts, while a batch of decoded
+#: rows stays well under 1 GB whatever the size of the files (benchmarks/big_file.py measures
+#: the peak on a 2 GB file).
+COMMIT_LINES = 2 * BATCH_LINES
+#: Files at least this large get their digest worked out beside their decoding when their size
+#: rules out that they were stored before (hashing 325 MB is a third of a second of one core).
+LATE_DIGEST_BYTES = 64 * 2**20
 #: Rejected lines whose excerpt the report keeps in memory (all of them are in the quarantine).
 REPORT_TEXTS = 100
 
@@ -112,62 +118,113 @@ def ingest_paths(
     report = IngestReport()
     files = find_inputs(paths, report.empty_folders)
     known = store.ingested_digests()
-    todo: list[tuple[Path, str]] = []
+    sizes = {path: file_size(path) for path in files}
+    # A large file whose size no stored file and no other input has cannot have been ingested
+    # before: its digest (for the manifest) is worked out while it is decoded, not before.
+    known_sizes = store_file_sizes(store)
+    size_counts = Counter(sizes.values())
+    todo: list[Path] = []
+    digests: dict[Path, str | Future] = {}
     unreadable: list[Rejected] = []
-    for path in files:
-        try:
-            digest = file_digest(path)
-        except OSError as exc:  # left out of the manifest: tried again next run
-            unreadable.append(Rejected(display_name(path), 1, None, f"file unreadable: {exc.strerror or exc}", ""))
-            continue
-        if digest in known:
-            report.files_skipped += 1
-        else:
-            known.add(digest)
-            todo.append((path, digest))
-    digests = dict(todo)
-    removals = [p for p, _ in todo if _kind(p) == "removals"]
-    captures = [p for p, _ in todo if _kind(p) == "capture"]
-    total = sum(file_size(p) for p, _ in todo)
-    done = 0
+    with ThreadPoolExecutor(1, "digest") as hasher, ThreadPoolExecutor(1, "commit") as committer:
+        for path in files:
+            size = sizes[path]
+            if size >= LATE_DIGEST_BYTES and size not in known_sizes and size_counts[size] == 1:
+                digests[path] = hasher.submit(file_digest, path)
+                todo.append(path)
+                continue
+            try:
+                digest = file_digest(path)
+            except OSError as exc:  # left out of the manifest: tried again next run
+                unreadable.append(_unreadable(path, exc))
+                continue
+            if digest in known:
+                report.files_skipped += 1
+            else:
+                known.add(digest)
+                digests[path] = digest
+                todo.append(path)
+        removals = [p for p in todo if _kind(p) == "removals"]
+        captures = [p for p in todo if _kind(p) == "capture"]
+        total = sum(sizes[p] for p in todo)
+        done = 0
 
-    def advance(nbytes: int) -> None:
-        nonlocal done
-        done = min(total, done + nbytes)  # a file that grew while read never overshoots
-        if progress:
-            progress(done, total)
+        def advance(nbytes: int) -> None:
+            nonlocal done
+            done = min(total, done + nbytes)  # a file that grew while read never overshoots
+            if progress:
+                progress(done, total)
 
-    if unreadable:
-        _commit(store, report, {}, unreadable, 0, [])
-    if removals:
-        rows, bad, count = parse_removal_files(removals, now=now)
-        _commit(store, report, {"removals": rows}, bad, count, [(p, digests[p]) for p in removals])
-        advance(sum(file_size(p) for p in removals))
-    parts: list[CaptureBatch] = []
-    finished: list[Path] = []
-    held = 0
-    for batch, files_done in capture_parts(captures, engine=engine, workers=workers, now=now):
-        parts.append(batch)
-        held += batch.lines
-        finished += files_done
-        advance(batch.read_bytes)
-        if held >= COMMIT_LINES:
-            _commit_captures(store, report, parts, [(p, digests[p]) for p in finished])
-            parts, finished, held = [], [], 0
-    if parts or finished:
-        _commit_captures(store, report, parts, [(p, digests[p]) for p in finished])
+        if unreadable:
+            _commit(store, report, {}, unreadable, 0, [])
+        if removals:
+            rows, bad, count = parse_removal_files(removals, now=now)
+            _commit(store, report, {"removals": rows}, bad, count, [(p, digests[p]) for p in removals])
+            advance(sum(sizes[p] for p in removals))
+        # Commits run one at a time, in order, beside the decoding: while one batch is written the
+        # engine's workers decode the next. At most one commit is in flight (memory).
+        in_flight: Future | None = None
+
+        def commit(parts: list[CaptureBatch], finished: list[Path]) -> None:
+            nonlocal in_flight
+            if in_flight is not None:
+                in_flight.result()  # the previous commit first (its error surfaces here)
+            in_flight = committer.submit(_commit_captures, store, report, parts,
+                                         [(p, digests[p]) for p in finished])
+
+        parts: list[CaptureBatch] = []
+        finished: list[Path] = []
+        held = 0
+        for batch, files_done in capture_parts(captures, engine=engine, workers=workers, now=now):
+            parts.append(batch)
+            held += batch.lines
+            finished += files_done
+            advance(batch.read_bytes)
+            if held >= COMMIT_LINES:
+                commit(parts, finished)
+                parts, finished, held = [], [], 0
+        if parts or finished:
+            commit(parts, finished)
+        if in_flight is not None:
+            in_flight.result()
     advance(total)
     return report
 
 
+def store_file_sizes(store: Store) -> set[int | None]:
+    """Sizes of the files the store's manifest lists (None for an entry without one)."""
+    return {f.get("size") for entry in store.manifest() for f in entry.get("files", [])}
+
+
+def _unreadable(path: Path, exc: OSError) -> Rejected:
+    return Rejected(display_name(path), 1, None, f"file unreadable: {exc.strerror or exc}", "")
+
+
 def _commit_captures(store: Store, report: IngestReport, parts: list[CaptureBatch],
-                     files: list[tuple[Path, str]]) -> None:
+                     files: list[tuple[Path, str | Future]]) -> None:
     batch = CaptureBatch.join(parts)
+    files, late = _digests_of(files)
+    batch.rejected += late
     snapshots, attributes = first_capture_wins(store, batch.snapshots, batch.attributes)
     report.clamped += batch.clamped
     report.repeated += batch.snapshots.num_rows - snapshots.num_rows
     _commit(store, report, {"snapshots": snapshots, "attributes": attributes},
             batch.rejected, batch.lines, files)
+
+
+def _digests_of(files: list[tuple[Path, str | Future]]) -> tuple[list[tuple[Path, str]], list[Rejected]]:
+    """The digests worked out beside the decoding, waited for; a file that could not be read
+    for its digest is left out of the manifest (tried again next run) with a quarantine line."""
+    ready, failed = [], []
+    for path, digest in files:
+        if isinstance(digest, Future):
+            try:
+                digest = digest.result()
+            except OSError as exc:
+                failed.append(_unreadable(path, exc))
+                continue
+        ready.append((path, digest))
+    return ready, failed
 
 
 def first_capture_wins(store: Store, snapshots: pa.Table, attributes: pa.Table) -> tuple[pa.Table, pa.Table]:
