@@ -27,8 +27,9 @@ from triage.formats.ata_thresholds import build_smart_thresholds
 TRIAGE = str(Path(sys.executable).with_name("triage"))
 
 
-def write_file(path: Path, size: int) -> int:
-    """Invented ATA captures (unique serial per line, 30 nights) until ``size`` bytes."""
+def write_file(path: Path, size: int, first: int = 0, lines: int | None = None) -> int:
+    """Invented ATA captures (unique serial per line, 30 nights) until ``size`` bytes (or
+    ``lines`` captures); serials count from ``first`` (different ``first``: different drives)."""
     smart = build_smart_data([SmartAttribute(5, 0x33, 100, 100, 0), SmartAttribute(9, 0x32, 90, 90, 20_000),
                               SmartAttribute(194, 0x22, 64, 50, 36)]).hex()
     thresholds = build_smart_thresholds({5: 10}).hex()
@@ -36,8 +37,8 @@ def write_file(path: Path, size: int) -> int:
                                   rotation_rpm=7200, integrity=False).hex()
     count = written = 0
     with path.open("w") as fh:
-        while written < size:
-            serial = f"QB{count:010d}"
+        while (written < size) if lines is None else (count < lines):
+            serial = f"QB{first + count:010d}"
             # the serial lives in IDENTIFY words 10-19 (bytes 20-39), two characters per word swapped
             swapped = bytes(b for pair in zip(serial.encode()[1::2], serial.encode()[::2]) for b in pair).hex()
             ident = identify[:40] + swapped + identify[40 + len(swapped):]
