@@ -483,6 +483,9 @@ def _read_lines(reader: CaptureLines, lines: Iterator, piece: Piece, pending: di
     seq = piece.seq
     count = excerpt_bytes = 0
     done = stopped = False
+    # per bus: (payload name, byte length, the batch's list of that payload), bound once
+    columns = {bus: [(name, size, pending[bus].payloads[name]) for name, size in names.items()]
+               for bus, names in PAYLOADS.items()}
     try:
         while count < max_lines and excerpt_bytes < BATCH_EXCERPT_BYTES:
             item = next(lines, None)
@@ -495,17 +498,16 @@ def _read_lines(reader: CaptureLines, lines: Iterator, piece: Piece, pending: di
                 if isinstance(line, OversizeLine):
                     raise LineError(None, f"line of {line.length} bytes is over the limit of {MAX_LINE_BYTES}")
                 obj, bus, stamp = check_line(line)
-                decoded = [(n, decode_payload(obj, n, size)) for n, size in PAYLOADS[bus].items()]
+                decoded = [decode_payload(obj, name, size) for name, size, _ in columns[bus]]
             except LineError as exc:
                 text = excerpt(line)
                 excerpt_bytes += len(text)
                 rejected.append(Rejected(source, number, exc.field, exc.reason, text))
                 continue
-            target = pending[bus]
-            target.meta.append(((seq << 32) | number, number, obj["host"], obj["device"],
-                                obj.get("slot"), obj.get("group"), stamp))
-            for name, data in decoded:
-                target.payloads[name].append(data)
+            pending[bus].meta.append(((seq << 32) | number, number, obj["host"], obj["device"],
+                                      obj.get("slot"), obj.get("group"), stamp))
+            for (_, _, column), data in zip(columns[bus], decoded):
+                column.append(data)
     except FileStopped as exc:
         rejected.append(Rejected(source, reader.next_line, None, f"file unreadable after line {reader.next_line - 1}: {exc}", ""))
         done = stopped = True
