@@ -87,7 +87,8 @@ def compare(name: str, files: list[Path], work: Path, engine, repeat: int) -> di
     best_floor, best_ingest = min(floors), min(ingests)
     print(f"{name:36s} {n:8d} captures  floor {best_floor:6.2f} s  ingest {best_ingest:6.2f} s "
           f"(median {statistics.median(ingests):.2f})  ratio {best_ingest / best_floor:5.2f}x  "
-          f"{stored / best_ingest:8.0f} captures/s  | CPU ratio {min(cpus) / min(floor_cpu):4.2f}x")
+          f"{stored / best_ingest:8.0f} captures/s  | CPU ratio "
+          + (f"{min(cpus) / min(floor_cpu):4.2f}x" if engine is None else "n/a (Dask workers)"))
     return {"captures": n, "floor": best_floor, "ingest": best_ingest}
 
 

@@ -118,36 +118,11 @@ def ingest_paths(
     """
     report = IngestReport()
     files = find_inputs(paths, report.empty_folders)
-    known = store.ingested_digests()
-    sizes = {path: file_size(path) for path in files}
-    # A large file whose size no stored file and no other input has cannot have been ingested
-    # before: its digest (for the manifest) is worked out while it is decoded, not before.
-    known_sizes = store_file_sizes(store)
-    size_counts = Counter(sizes.values())
-    todo: list[Path] = []
-    digests: dict[Path, str | Future] = {}
-    unreadable: list[Rejected] = []
-    with ThreadPoolExecutor(1, "digest") as hasher, ThreadPoolExecutor(1, "commit") as committer:
-        for path in files:
-            size = sizes[path]
-            if size >= LATE_DIGEST_BYTES and size not in known_sizes and size_counts[size] == 1:
-                digests[path] = hasher.submit(file_digest, path)
-                todo.append(path)
-                continue
-            try:
-                digest = file_digest(path)
-            except OSError as exc:  # left out of the manifest: tried again next run
-                unreadable.append(_unreadable(path, exc))
-                continue
-            if digest in known:
-                report.files_skipped += 1
-            else:
-                known.add(digest)
-                digests[path] = digest
-                todo.append(path)
+    with ThreadPoolExecutor(1, "digest") as hasher, _Committer(store, report) as committer:
+        todo, digests, unreadable = _new_files(store, files, report, hasher)
         removals = [p for p in todo if _kind(p) == "removals"]
         captures = [p for p in todo if _kind(p) == "capture"]
-        total = sum(sizes[p] for p in todo)
+        total = sum(file_size(p) for p in todo)
         done = 0
 
         def advance(nbytes: int) -> None:
@@ -161,18 +136,7 @@ def ingest_paths(
         if removals:
             rows, bad, count = parse_removal_files(removals, now=now)
             _commit(store, report, {"removals": rows}, bad, count, [(p, digests[p]) for p in removals])
-            advance(sum(sizes[p] for p in removals))
-        # Commits run one at a time, in order, beside the decoding: while one batch is written the
-        # engine's workers decode the next. At most one commit is in flight (memory).
-        in_flight: Future | None = None
-
-        def commit(parts: list[CaptureBatch], finished: list[Path]) -> None:
-            nonlocal in_flight
-            if in_flight is not None:
-                in_flight.result()  # the previous commit first (its error surfaces here)
-            in_flight = committer.submit(_commit_captures, store, report, parts,
-                                         [(p, digests[p]) for p in finished])
-
+            advance(sum(file_size(p) for p in removals))
         parts: list[CaptureBatch] = []
         finished: list[Path] = []
         held = 0
@@ -182,19 +146,76 @@ def ingest_paths(
             finished += files_done
             advance(batch.read_bytes)
             if held >= COMMIT_LINES:
-                commit(parts, finished)
+                committer.submit(parts, [(p, digests[p]) for p in finished])
                 parts, finished, held = [], [], 0
         if parts or finished:
-            commit(parts, finished)
-        if in_flight is not None:
-            in_flight.result()
+            committer.submit(parts, [(p, digests[p]) for p in finished])
     advance(total)
     return report
 
 
-def store_file_sizes(store: Store) -> set[int | None]:
-    """Sizes of the files the store's manifest lists (None for an entry without one)."""
-    return {f.get("size") for entry in store.manifest() for f in entry.get("files", [])}
+def _new_files(store: Store, files: list[Path], report: IngestReport, hasher: ThreadPoolExecutor
+               ) -> tuple[list[Path], dict[Path, str | Future], list[Rejected]]:
+    """The files not stored before (a repeat is counted in ``report.files_skipped``), their
+    SHA-256 digests, and a quarantine line for each file that could not be read.
+
+    A large file whose size neither a stored file nor another input has cannot be a repeat: its
+    digest (needed for the manifest) is worked out by ``hasher`` while the file is decoded."""
+    known = store.ingested_digests()
+    known_sizes = {f.get("size") for entry in store.manifest() for f in entry.get("files", [])}
+    sizes = {path: file_size(path) for path in files}
+    size_counts = Counter(sizes.values())
+    todo: list[Path] = []
+    digests: dict[Path, str | Future] = {}
+    unreadable: list[Rejected] = []
+    for path in files:
+        size = sizes[path]
+        if size >= LATE_DIGEST_BYTES and size not in known_sizes and size_counts[size] == 1:
+            digests[path] = hasher.submit(file_digest, path)
+            todo.append(path)
+            continue
+        try:
+            digest = file_digest(path)
+        except OSError as exc:  # left out of the manifest: tried again next run
+            unreadable.append(_unreadable(path, exc))
+            continue
+        if digest in known:
+            report.files_skipped += 1
+        else:
+            known.add(digest)
+            digests[path] = digest
+            todo.append(path)
+    return todo, digests, unreadable
+
+
+class _Committer:
+    """Capture commits in a thread beside the decoding, one at a time and in order: while one
+    batch is written, the engine's workers decode the next. At most one commit is in flight
+    (memory); leaving waits for it, and its error, if any, is raised."""
+
+    def __init__(self, store: Store, report: IngestReport):
+        self.store, self.report = store, report
+        self.pool = ThreadPoolExecutor(1, "commit")
+        self.in_flight: Future | None = None
+
+    def submit(self, parts: list[CaptureBatch], files: list[tuple[Path, str | Future]]) -> None:
+        self.wait()
+        self.in_flight = self.pool.submit(_commit_captures, self.store, self.report, parts, files)
+
+    def wait(self) -> None:
+        if self.in_flight is not None:
+            in_flight, self.in_flight = self.in_flight, None
+            in_flight.result()
+
+    def __enter__(self) -> "_Committer":
+        return self
+
+    def __exit__(self, kind, *exc) -> None:
+        try:
+            if kind is None:
+                self.wait()
+        finally:  # on an error, a commit under way still finishes whole before this returns
+            self.pool.shutdown(wait=True)
 
 
 def _unreadable(path: Path, exc: OSError) -> Rejected:
