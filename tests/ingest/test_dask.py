@@ -22,6 +22,7 @@ from triage.cli import app
 from triage.exitcodes import Exit
 from triage.engine import DaskEngine, EngineError, LocalEngine
 from triage.ingest import captures, ingest_paths
+from triage.ingest.captures import InputNotVisible
 from triage.store.dataset import Store
 
 distributed = pytest.importorskip("distributed")
@@ -168,3 +169,25 @@ def test_ingest_on_a_named_scheduler_from_the_command_line(tmp_path, inputs, clu
                                       "--scheduler", cluster.scheduler_address])
     assert result.exit_code == Exit.INPUT_REJECTED, result.output  # the bad lines were quarantined
     assert not Store(root).read("snapshots").empty
+
+
+def test_an_input_the_workers_cannot_see_stops_the_run_instead_of_being_quarantined(tmp_path, write_capture, cluster, monkeypatch):
+    from triage.ingest import run
+
+    first = write_capture("a.jsonl.gz", [ata_line("QHV1")])
+    hidden = write_capture("b.jsonl.gz", [ata_line("QHV2", taken_at="2026-11-01T02:20:00Z")])
+    real = run.file_digest
+
+    def digest_then_hide(path):  # this process saw the file; the workers will not
+        digest = real(path)
+        if path == hidden:
+            path.rename(path.with_suffix(".moved"))
+        return digest
+
+    monkeypatch.setattr(run, "file_digest", digest_then_hide)
+    store = Store(tmp_path / "store")
+    with DaskEngine(cluster.scheduler_address) as engine, pytest.raises(InputNotVisible) as caught:
+        ingest_paths(store, [first, hidden], now=NOW, engine=engine)
+    message = str(caught.value)
+    assert "\n" not in message and str(hidden) in message and "same paths" in message
+    assert str(hidden) not in {f["path"] for m in store.manifest() for f in m["files"]}  # read next run

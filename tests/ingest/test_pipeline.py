@@ -6,6 +6,8 @@ from __future__ import annotations
 import hashlib
 from datetime import datetime, timezone
 
+import pytest
+
 from tests.ingest.lines import ata_line
 from triage.engine import LocalEngine
 from triage.ingest import captures, ingest_paths, run
@@ -73,3 +75,14 @@ def test_progress_counts_bytes_up_to_the_size_of_the_input(tmp_path, write_captu
     assert {of for _, of in seen} == {total}
     assert [done for done, _ in seen] == sorted(done for done, _ in seen) and seen[-1][0] == total
     assert len({done for done, _ in seen}) > 3  # moved along with the ranges, not only at the end
+
+
+def test_a_task_whose_file_is_gone_raises_one_line_naming_it(tmp_path, write_capture):
+    from triage.ingest.captures import InputNotVisible, plan_tasks, read_task
+
+    path = write_capture("a.jsonl.gz", night(7))
+    (task,) = plan_tasks([path], 1, NOW, 100)
+    path.unlink()
+    with pytest.raises(InputNotVisible, match="same paths") as caught:
+        read_task(task)
+    assert "\n" not in str(caught.value) and str(path) in str(caught.value)

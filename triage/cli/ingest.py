@@ -40,6 +40,7 @@ def ingest(
     decoded on this machine's cores or on a Dask cluster; only this process writes the store."""
     from triage.engine import EngineError
     from triage.ingest import ingest_paths
+    from triage.ingest.captures import InputNotVisible
     from triage.report.console import progress_bar
     from triage.store.dataset import StoreLocked
 
@@ -53,8 +54,8 @@ def ingest(
         fail(str(exc), Exit.USAGE)
     except StoreLocked as exc:
         fail(str(exc), Exit.LOCKED)
-    except EngineError as exc:  # batches committed before stay whole; the rest is read again next run
-        fail(f"{exc}", Exit.FAILURE)
+    except (EngineError, InputNotVisible) as exc:  # commits made before stay whole; the rest is read next run
+        fail(str(exc), Exit.FAILURE)
     except OSError as exc:  # a full disk, a store folder we may not write
         fail(os_failure(exc), Exit.FAILURE)
     finally:

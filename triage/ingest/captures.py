@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import os
+import platform
 import re
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timedelta, timezone
@@ -369,8 +370,22 @@ def capture_parts(
             engine.close()
 
 
+class InputNotVisible(RuntimeError):
+    """A task's input file is not where the run found it (a Dask worker without the shared file
+    system, a file moved away mid-run): one line; the run stops before anything of it is stored,
+    rather than quarantining the whole file as unreadable and listing it as ingested."""
+
+
 def read_task(task: CaptureTask) -> TaskOutput:
     """On a worker: the first batch of a task (and where to resume when it is longer)."""
+    for piece in task.pieces:
+        try:
+            os.stat(piece.path)
+        except OSError as exc:
+            raise InputNotVisible(
+                f"{display_name(piece.path)}: cannot be read where the task ran ({platform.node()}: "
+                f"{exc.strerror or exc}); workers must see the input files at the same paths as "
+                "triage ingest; this file was not stored") from None
     return _TaskReader(task).fill()
 
 
