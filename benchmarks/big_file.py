@@ -27,8 +27,10 @@ from triage.formats.ata_thresholds import build_smart_thresholds
 TRIAGE = str(Path(sys.executable).with_name("triage"))
 
 
-def write_file(path: Path, size: int) -> int:
-    """Invented ATA captures (unique serial per line, 30 nights) until ``size`` bytes."""
+def write_file(path: Path, size: int, first: int = 0, lines: int | None = None, nights: int = 30,
+               first_night: int = 1) -> int:
+    """Invented ATA captures (unique serial per line, spread over ``nights`` nights of October 2026
+    from ``first_night``) until ``size`` bytes (or ``lines`` captures); serials count from ``first``."""
     smart = build_smart_data([SmartAttribute(5, 0x33, 100, 100, 0), SmartAttribute(9, 0x32, 90, 90, 20_000),
                               SmartAttribute(194, 0x22, 64, 50, 36)]).hex()
     thresholds = build_smart_thresholds({5: 10}).hex()
@@ -36,13 +38,13 @@ def write_file(path: Path, size: int) -> int:
                                   rotation_rpm=7200, integrity=False).hex()
     count = written = 0
     with path.open("w") as fh:
-        while written < size:
-            serial = f"QB{count:010d}"
+        while (written < size) if lines is None else (count < lines):
+            serial = f"QB{first + count:010d}"
             # the serial lives in IDENTIFY words 10-19 (bytes 20-39), two characters per word swapped
             swapped = bytes(b for pair in zip(serial.encode()[1::2], serial.encode()[::2]) for b in pair).hex()
             ident = identify[:40] + swapped + identify[40 + len(swapped):]
             line = json.dumps({"capture": 1, "host": f"big-{count % 50}", "device": "/dev/sda", "slot": None,
-                               "group": None, "taken_at": f"2026-10-{1 + count % 30:02d}T02:{count % 60:02d}:00Z",
+                               "group": None, "taken_at": f"2026-10-{first_night + count % nights:02d}T02:{count % 60:02d}:00Z",
                                "bus": "ata", "identify": ident, "smart": smart, "thresholds": thresholds}) + "\n"
             fh.write(line)
             written += len(line)

@@ -7,34 +7,59 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import OutputFormat, StoreOption, app, fail, format_option, open_store, os_failure, say
+from triage.cli.common import (
+    EngineChoice,
+    EngineOption,
+    OutputFormat,
+    SchedulerOption,
+    StoreOption,
+    app,
+    fail,
+    format_option,
+    open_engine_options,
+    open_store,
+    os_failure,
+    say,
+)
 from triage.cli.risk import _print_cautions, _risk_inputs
 from triage.exitcodes import Exit
 from triage.safety import visible
 
 
 @app.command(
-    epilog="Example: triage ingest /srv/captures/2026-11-30 --store /srv/triage/store",
+    epilog="Example: triage ingest /srv/captures/2026-11-30 --store /srv/triage/store "
+           "--scheduler tcp://10.0.0.5:8786",
 )
 def ingest(
     paths: list[Path] = typer.Argument(..., metavar="INPUT", help="Capture files (.jsonl, .jsonl.gz), removal logs (.csv), or folders of them."),
     store: Optional[Path] = StoreOption,
+    engine: Optional[EngineChoice] = EngineOption,
+    scheduler: Optional[str] = SchedulerOption,
 ) -> None:
-    """Store capture files and removal logs; bad lines go to quarantine with a reason."""
+    """Store capture files and removal logs; bad lines go to quarantine with a reason. Files are
+    decoded on this machine's cores or on a Dask cluster; only this process writes the store."""
+    from triage.engine import EngineError
     from triage.ingest import ingest_paths
+    from triage.ingest.captures import InputNotVisible
     from triage.report.console import progress_bar
     from triage.store.dataset import StoreLocked
 
-    target = open_store(store, create=True)  # the one command that may create a store
+    # the engine first: a scheduler that cannot be reached stops the run before the store is touched
+    runner = open_engine_options(engine, scheduler)
     try:
-        with target.lock(), progress_bar("ingesting files") as progress:
-            report = ingest_paths(target, paths, progress=progress)
+        target = open_store(store, create=True)  # the one command that may create a store
+        with target.lock(), progress_bar("ingesting", in_bytes=True) as progress:
+            report = ingest_paths(target, paths, progress=progress, engine=runner)
     except (FileNotFoundError, ValueError) as exc:
         fail(str(exc), Exit.USAGE)
     except StoreLocked as exc:
         fail(str(exc), Exit.LOCKED)
+    except (EngineError, InputNotVisible) as exc:  # commits made before stay whole; the rest is read next run
+        fail(str(exc), Exit.FAILURE)
     except OSError as exc:  # a full disk, a store folder we may not write
         fail(os_failure(exc), Exit.FAILURE)
+    finally:
+        runner.close()
     for note in report.empty_folders:
         say(f"ingest: {note}")
     for rejected in report.rejected[:20]:
@@ -161,7 +186,7 @@ def demo(
     with progress_bar("writing captures") as progress:
         write_captures(fleet, folder.captures, progress=progress)
     ruleset, config = _risk_inputs(None, False, None)
-    with progress_bar("ingesting") as progress:
+    with progress_bar("ingesting", in_bytes=True) as progress:
         # the invented fleet lives in the past: its last night is "now", so staleness is not checked
         report = run_nightly(
             Store(folder.store), folder.captures, folder.tickets, ruleset, refit_days=0.0, config=config,

@@ -11,15 +11,13 @@ byte layouts are decoded for the whole batch at once by the vectorised decoders 
 from __future__ import annotations
 
 import json
-import multiprocessing
 import os
+import platform
 import re
-from collections import deque
-from concurrent.futures import ProcessPoolExecutor
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
-from typing import Iterator
+from typing import TYPE_CHECKING, Iterator
 
 import numpy as np
 import orjson
@@ -32,6 +30,7 @@ from triage.formats.ata_smart import decode_smart_batch
 from triage.formats.ata_thresholds import decode_thresholds_batch
 from triage.formats.nvme_health import decode_nvme_health_batch
 from triage.formats.nvme_identify import decode_nvme_identify_batch
+from triage.engine import LocalEngine
 from triage.ingest.reading import (
     MAX_BLANK_LINES,
     MAX_LINE_BYTES,
@@ -40,9 +39,9 @@ from triage.ingest.reading import (
     OversizeLine,
     display_name,
     excerpt,
+    is_gzip_name,
     is_utf8_text,
 )
-from triage.process import die_with_parent
 from triage.store.schema import (
     ATA_COUNTER_ATTRIBUTES,
     ATA_POWER_ON_HOURS_ID,
@@ -77,6 +76,9 @@ BATCH_LINES = 25_000
 #: ... and bytes of quarantine excerpts held together, at most.
 BATCH_EXCERPT_BYTES = 32 * 2**20
 _STRING_FIELDS = ("host", "device", "slot", "group")
+
+if TYPE_CHECKING:
+    from triage.engine import _Engine
 
 
 class LineError(ValueError):
@@ -122,6 +124,7 @@ class CaptureBatch:
     rejected: list[Rejected]
     lines: int
     clamped: int = 0  # captures with a counter beyond the int64 column, stored at 2**63-1
+    read_bytes: int = 0  # bytes of the files on disk read for this batch (progress)
 
     @classmethod
     def empty(cls) -> "CaptureBatch":
@@ -137,6 +140,7 @@ class CaptureBatch:
             rejected=[r for p in parts for r in p.rejected],
             lines=sum(p.lines for p in parts),
             clamped=sum(p.clamped for p in parts),
+            read_bytes=sum(p.read_bytes for p in parts),
         )
 
 
@@ -242,9 +246,88 @@ def parse_capture_files(paths: list[Path], workers: int | None = None, now: date
     return CaptureBatch.join([batch for batch, _ in capture_parts(list(paths), workers=workers, now=now)])
 
 
+#: Compressed bytes of consecutive files read as one task, at most: about 10,000 lines, so a
+#: group fits in one worker's batch (a longer one is finished in the main process, serially).
+#: Fewer when there would be under 4 tasks per worker (idle workers at the end).
+GROUP_BYTES = 2**20
+#: A plain (not gzip) file is cut into byte ranges of at most this many bytes, read by several
+#: workers at once (about 5,000 ATA captures: one range is one modest batch)...
+RANGE_BYTES = 16 * 2**20
+#: ... and of at least this many (a range per few hundred lines would cost more than it saves).
+MIN_RANGE_BYTES = 2**20
+
+
+@dataclass(frozen=True)
+class Piece:
+    """A stretch of one capture file: the whole file, or -- plain files only -- the lines that
+    start in bytes ``[start, stop)`` (``stop`` None: to the end of the file)."""
+
+    seq: int  # the file's place in the run's file order
+    path: Path
+    start: int = 0
+    stop: int | None = None
+
+    @property
+    def is_range(self) -> bool:
+        return self.start > 0 or self.stop is not None
+
+
+@dataclass(frozen=True)
+class CaptureTask:
+    """One map step of ingest, a plain description any engine can ship to a worker: consecutive
+    small files read together, or one byte range of a large plain file."""
+
+    pieces: tuple[Piece, ...]
+    now: datetime
+    max_lines: int
+
+
+@dataclass
+class TaskOutput:
+    """A batch read by a task, and where the task stands."""
+
+    batch: CaptureBatch
+    finished: list[Path]  # files whose last line is in this batch
+    resume: tuple | None  # where to go on (the task stopped at ``max_lines``), None when done
+    lines_numbered: int  # lines of the current piece numbered so far, blank ones included
+    blank_lines: int  # blank lines of the current piece so far
+
+
+def plan_tasks(paths: list[Path], workers: int, now: datetime, max_lines: int) -> list[CaptureTask]:
+    """The run's tasks in file order: large plain files cut into byte ranges, the other files in
+    groups of about ``GROUP_BYTES``."""
+    sizes = [file_size(p) for p in paths]
+    target = max(1, min(GROUP_BYTES, sum(sizes) // (4 * workers)))
+    tasks: list[CaptureTask] = []
+    group: list[Piece] = []
+    held = 0
+
+    def close_group() -> None:
+        nonlocal group, held
+        if group:
+            tasks.append(CaptureTask(tuple(group), now, max_lines))
+        group, held = [], 0
+
+    for seq, (path, size) in enumerate(zip(paths, sizes)):
+        span = max(MIN_RANGE_BYTES, min(RANGE_BYTES, size // (4 * workers)))
+        if not is_gzip_name(path) and size >= 2 * span:
+            close_group()
+            cuts = list(range(0, size, span))
+            for start, stop in zip(cuts, cuts[1:] + [None]):
+                tasks.append(CaptureTask((Piece(seq, path, start, stop),), now, max_lines))
+            continue
+        group.append(Piece(seq, path))
+        held += size
+        if held >= target:
+            close_group()
+    close_group()
+    return tasks
+
+
 def capture_parts(
     paths: list[Path],
     *,
+    engine: "_Engine | None" = None,
     workers: int | None = None,
     now: datetime | None = None,
     max_lines: int | None = None,
@@ -252,59 +335,83 @@ def capture_parts(
     """The captures of ``paths`` in batches of at most ``max_lines`` lines, in file order.
 
     Yields ``(batch, finished)``: ``finished`` lists the files whose last line is in the batch.
-    Consecutive small files are read as one group and decoded together (one decode per batch,
-    not per file). With ``workers`` > 1 (default: one per CPU) groups are read in parallel
-    processes, at most ``workers + 1`` batches ahead; a group longer than a batch is continued in
-    this process from where the worker stopped.
+    The tasks (:func:`plan_tasks`) run on ``engine`` (default: a local one with ``workers``
+    processes, one per CPU), at most two per worker ahead of the batch handed out; a task longer
+    than a batch is continued in this process from where the worker stopped. A byte range numbers
+    its lines from 1; here they are shifted by the lines of the ranges before it, so line numbers
+    and ``_capture`` ids come out exactly as if the file had been read in one piece.
     """
     now = now or datetime.now(timezone.utc)
     max_lines = max_lines or BATCH_LINES
-    workers = max(1, min(workers or os.cpu_count() or 1, len(paths)))
-    groups = _groups(list(enumerate(paths)), workers)
-    if workers <= 1:
-        for group in groups:
-            yield from _GroupReader(group, now).parts(max_lines)
+    paths = list(paths)
+    if not paths:
         return
-    context = multiprocessing.get_context("fork") if "fork" in multiprocessing.get_all_start_methods() else None
-    # workers die with this process: a killed ingest leaves no orphan behind (triage/process.py)
-    with ProcessPoolExecutor(max_workers=workers, mp_context=context,
-                             initializer=die_with_parent, initargs=(os.getpid(),)) as pool:
-        todo = iter(groups)
-        window: deque = deque()
-
-        def top_up() -> None:
-            while len(window) < workers + 1 and (group := next(todo, None)) is not None:
-                window.append((group, pool.submit(_first_part, group, now, max_lines)))
-
-        top_up()
-        while window:
-            group, future = window.popleft()
-            batch, finished, resume = future.result()
-            top_up()
-            yield batch, finished
-            if resume is not None:
-                yield from _GroupReader(group, now, resume).parts(max_lines)
-
-
-#: Compressed bytes of consecutive files read as one group, at most: about 10,000 lines, so a
-#: group fits in one worker's batch (a longer one is finished in the main process, serially).
-#: Fewer when there would be under 4 groups per worker (idle workers at the end).
-GROUP_BYTES = 2**20
+    own = engine is None
+    if own:
+        engine = LocalEngine(max(1, min(workers or os.cpu_count() or 1, len(paths))))
+    try:
+        tasks = plan_tasks(paths, engine.workers, now, max_lines)
+        numbered: dict[int, int] = {}  # file sequence -> lines numbered by its ranges read so far
+        blanks: dict[int, int] = {}
+        for task, first in zip(tasks, engine.map(read_task, tasks, ahead=2 * engine.workers)):
+            piece = task.pieces[0]
+            for out in _continued(task, first):
+                if piece.is_range:
+                    _shift_lines(out.batch, numbered.get(piece.seq, 0))
+                    if out.resume is None:  # the range is done
+                        numbered[piece.seq] = numbered.get(piece.seq, 0) + out.lines_numbered
+                        blanks[piece.seq] = blanks.get(piece.seq, 0) + out.blank_lines
+                        if piece.stop is None and blanks[piece.seq] > MAX_BLANK_LINES:
+                            out.batch.rejected.append(_blank_lines_rejected(
+                                display_name(piece.path), numbered[piece.seq] + 1, blanks[piece.seq]))
+                yield out.batch, out.finished
+    finally:
+        if own:
+            engine.close()
 
 
-def _groups(files: list[tuple[int, Path]], workers: int) -> list[list[tuple[int, Path]]]:
-    sizes = [file_size(p) for _, p in files]
-    target = max(1, min(GROUP_BYTES, sum(sizes) // (4 * workers)))
-    groups, group, held = [], [], 0
-    for item, size in zip(files, sizes):
-        group.append(item)
-        held += size
-        if held >= target:
-            groups.append(group)
-            group, held = [], 0
-    if group:
-        groups.append(group)
-    return groups
+class InputNotVisible(RuntimeError):
+    """A task's input file is not where the run found it (a Dask worker without the shared file
+    system, a file moved away mid-run): one line; the run stops before anything of it is stored,
+    rather than quarantining the whole file as unreadable and listing it as ingested."""
+
+
+def read_task(task: CaptureTask) -> TaskOutput:
+    """On a worker: the first batch of a task (and where to resume when it is longer)."""
+    for piece in task.pieces:
+        try:
+            os.stat(piece.path)
+        except OSError as exc:
+            raise InputNotVisible(
+                f"{display_name(piece.path)}: cannot be read where the task ran ({platform.node()}: "
+                f"{exc.strerror or exc}); workers must see the input files at the same paths as "
+                "triage ingest; this file was not stored") from None
+    return _TaskReader(task).fill()
+
+
+def _continued(task: CaptureTask, first: TaskOutput) -> Iterator[TaskOutput]:
+    """The worker's first batch, then the rest of a long task, read in this process."""
+    yield first
+    if first.resume is not None:
+        reader = _TaskReader(task, first.resume)
+        while not reader.done():
+            yield reader.fill()
+
+
+def _shift_lines(batch: CaptureBatch, shift: int) -> None:
+    """Line numbers of a byte range made the file's: ``shift`` lines come before the range."""
+    if not shift:
+        return
+    for name in ("snapshots", "attributes"):
+        table = getattr(batch, name)
+        column = table.schema.get_field_index("_capture")
+        setattr(batch, name, table.set_column(column, "_capture", pc.add(table["_capture"], shift)))
+    batch.rejected = [replace(r, line=r.line + shift) for r in batch.rejected]
+
+
+def _blank_lines_rejected(source: str, line: int, count: int) -> Rejected:
+    return Rejected(source, line, None, f"{count} blank lines (a capture program writes none); "
+                                        "the other lines were read", "")
 
 
 def file_size(path: Path) -> int:
@@ -315,81 +422,85 @@ def file_size(path: Path) -> int:
         return 0  # reported when it is read
 
 
-def _first_part(group: list[tuple[int, Path]], now: datetime, max_lines: int):
-    """In a worker: the first batch of a group, the files it finished, and where to resume
-    (None when the group is done)."""
-    reader = _GroupReader(group, now)
-    batch, finished = reader.fill(max_lines)
-    return batch, finished, reader.resume_point()
+class _TaskReader:
+    """The lines of a task's pieces, checked per line and decoded per batch; keeps its place in
+    the current piece between batches (a gzip stream is never inflated twice in one process)."""
 
-
-class _GroupReader:
-    """Lines of consecutive files, checked per line and decoded per batch; keeps its place in the
-    current file between batches (a gzip stream is never inflated twice in one process)."""
-
-    def __init__(self, group: list[tuple[int, Path]], now: datetime, resume: tuple[int, int, int] | None = None):
-        self.group = group
-        self.now = now
-        self.index, start, first_line = resume or (0, 0, 1)
+    def __init__(self, task: CaptureTask, resume: tuple | None = None):
+        self.task = task
+        self.pieces = task.pieces
+        self.index, start, first_line, disk, blank = resume or (0, None, 1, 0, 0)
         self.reader: CaptureLines | None = None
         self.lines: Iterator | None = None
-        if self.index < len(group):
-            self._open(start, first_line)
+        if not self.done():
+            self._open(start, first_line, disk, blank)
 
-    def _open(self, start: int = 0, first_line: int = 1) -> None:
-        self.reader = CaptureLines(self.group[self.index][1], start, first_line)
+    def _open(self, start: int | None = None, first_line: int = 1, disk: int = 0, blank: int = 0) -> None:
+        piece = self.pieces[self.index]
+        self.reader = CaptureLines(piece.path, piece.start if start is None else start, first_line,
+                                   piece.stop, disk)
+        self.reader.blank_lines = blank
         self.lines = iter(self.reader)
 
     def done(self) -> bool:
-        return self.index >= len(self.group)
+        return self.index >= len(self.pieces)
 
-    def resume_point(self) -> tuple[int, int, int] | None:
-        return None if self.done() else (self.index, self.reader.position, self.reader.next_line)
+    def resume_point(self) -> tuple | None:
+        if self.done():
+            return None
+        r = self.reader
+        return (self.index, r.position, r.next_line, r.disk_position, r.blank_lines)
 
-    def parts(self, max_lines: int) -> Iterator[tuple[CaptureBatch, list[Path]]]:
-        while not self.done():
-            yield self.fill(max_lines)
-
-    def fill(self, max_lines: int) -> tuple[CaptureBatch, list[Path]]:
+    def fill(self) -> TaskOutput:
         """Up to ``max_lines`` lines (and ``BATCH_EXCERPT_BYTES`` of excerpts), decoded."""
+        max_lines = self.task.max_lines
         pending = {bus: _Pending(payloads={n: [] for n in names}) for bus, names in PAYLOADS.items()}
         rejected: list[Rejected] = []
         finished: list[Path] = []
-        count = excerpt_bytes = 0
+        count = excerpt_bytes = read_bytes = 0
+        numbered = blank = 0
         starts: dict[int, tuple[int, int]] = {}  # seq -> where this batch began in that file
         while not self.done() and count < max_lines and excerpt_bytes < BATCH_EXCERPT_BYTES:
-            seq, path = self.group[self.index]
-            starts.setdefault(seq, (self.reader.position, self.reader.next_line))
-            n, size, file_done = _read_lines(self.reader, self.lines, path, seq, pending, rejected,
-                                             max_lines - count)
+            piece = self.pieces[self.index]
+            starts.setdefault(piece.seq, (self.reader.position, self.reader.next_line))
+            n, size, piece_done = _read_lines(self.reader, self.lines, piece, pending, rejected,
+                                              max_lines - count)
             count += n
             excerpt_bytes += size
-            if file_done:
-                finished.append(path)
+            read_bytes += self.reader.new_bytes()
+            numbered, blank = self.reader.next_line - 1, self.reader.blank_lines
+            if piece_done:
+                if piece.stop is None:
+                    finished.append(piece.path)
                 self.index += 1
                 if not self.done():
                     self._open()
         parts, late = [], []
-        sources = {seq: (path, display_name(path)) for seq, path in self.group}
+        sources = {p.seq: (p.path, display_name(p.path)) for p in self.pieces}
         for bus, batch in pending.items():
             if batch.meta:
                 decode = _decode_ata if bus == "ata" else _decode_nvme
-                part, bad = decode(batch, sources, self.now)
+                part, bad = decode(batch, sources, self.task.now)
                 parts.append(part)
                 late += bad
         batch = CaptureBatch.join(parts)
         batch.rejected = rejected + _with_line_texts(late, sources, starts)
         batch.lines = count
-        return batch, finished
+        batch.read_bytes = read_bytes
+        return TaskOutput(batch, finished, self.resume_point(), numbered, blank)
 
 
-def _read_lines(reader: CaptureLines, lines: Iterator, path: Path, seq: int, pending: dict,
+def _read_lines(reader: CaptureLines, lines: Iterator, piece: Piece, pending: dict,
                 rejected: list[Rejected], max_lines: int) -> tuple[int, int, bool]:
-    """Check up to ``max_lines`` lines of one file into ``pending``; returns the lines read, the
-    excerpt bytes kept, and whether the file is done."""
-    source = display_name(path)
+    """Check up to ``max_lines`` lines of one piece into ``pending``; returns the lines read, the
+    excerpt bytes kept, and whether the piece is done."""
+    source = display_name(piece.path)
+    seq = piece.seq
     count = excerpt_bytes = 0
     done = stopped = False
+    # per bus: (payload name, byte length, the batch's list of that payload), bound once
+    columns = {bus: [(name, size, pending[bus].payloads[name]) for name, size in names.items()]
+               for bus, names in PAYLOADS.items()}
     try:
         while count < max_lines and excerpt_bytes < BATCH_EXCERPT_BYTES:
             item = next(lines, None)
@@ -402,27 +513,25 @@ def _read_lines(reader: CaptureLines, lines: Iterator, path: Path, seq: int, pen
                 if isinstance(line, OversizeLine):
                     raise LineError(None, f"line of {line.length} bytes is over the limit of {MAX_LINE_BYTES}")
                 obj, bus, stamp = check_line(line)
-                decoded = [(n, decode_payload(obj, n, size)) for n, size in PAYLOADS[bus].items()]
+                decoded = [decode_payload(obj, name, size) for name, size, _ in columns[bus]]
             except LineError as exc:
                 text = excerpt(line)
                 excerpt_bytes += len(text)
                 rejected.append(Rejected(source, number, exc.field, exc.reason, text))
                 continue
-            target = pending[bus]
-            target.meta.append(((seq << 32) | number, number, obj["host"], obj["device"],
-                                obj.get("slot"), obj.get("group"), stamp))
-            for name, data in decoded:
-                target.payloads[name].append(data)
+            pending[bus].meta.append(((seq << 32) | number, number, obj["host"], obj["device"],
+                                      obj.get("slot"), obj.get("group"), stamp))
+            for (_, _, column), data in zip(columns[bus], decoded):
+                column.append(data)
     except FileStopped as exc:
         rejected.append(Rejected(source, reader.next_line, None, f"file unreadable after line {reader.next_line - 1}: {exc}", ""))
         done = stopped = True
     except OSError as exc:
         rejected.append(Rejected(source, reader.next_line, None, f"file unreadable: {exc.strerror or exc}", ""))
         done = stopped = True
-    if done and not stopped and reader.blank_lines > MAX_BLANK_LINES:
-        rejected.append(Rejected(source, reader.next_line, None,
-                                 f"{reader.blank_lines} blank lines (a capture program writes none); "
-                                 "the other lines were read", ""))
+    if done and not stopped and not piece.is_range and reader.blank_lines > MAX_BLANK_LINES:
+        # a byte range's blank lines are added up over the file by capture_parts
+        rejected.append(_blank_lines_rejected(source, reader.next_line, reader.blank_lines))
     return count, excerpt_bytes, done
 
 

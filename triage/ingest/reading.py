@@ -32,6 +32,8 @@ INFLATE_RATIO_FLOOR = 16 * 2**20
 MAX_BLANK_LINES = 1000
 #: Bytes read from a plain file, or inflated from gzip, per step.
 BLOCK_BYTES = 1 << 20
+#: Bytes read per step when looking for the start of a line (a valid line is under 10 kB).
+SCAN_BYTES = 16 * 1024
 #: Compressed bytes fed to the inflater per step: small, so that when a member turns out damaged
 #: (zlib finds it at once or at the member's CRC) the lines inflated before are already handed out.
 GZIP_STEP_BYTES = 2048
@@ -53,7 +55,13 @@ class OversizeLine:
     def extended(self, more: bytes) -> "OversizeLine":
         """The same line with ``more`` bytes after it (the head grows up to ``EXCERPT_BYTES``)."""
         head = self.head if len(self.head) >= EXCERPT_BYTES else (self.head + more[:EXCERPT_BYTES])[:EXCERPT_BYTES]
-        return OversizeLine(self.length + len(more), head, self.blank and not more.strip())
+        return OversizeLine(self.length + len(more), head, self.blank and is_blank(more))
+
+
+def is_blank(data: bytes) -> bool:
+    """Only ASCII white space (or nothing): what ``data.strip()`` would empty, found without
+    copying (``isspace`` stops at the first other byte, the first byte of any capture line)."""
+    return not data or data.isspace()
 
 
 def is_gzip_name(path: Path) -> bool:
@@ -95,28 +103,58 @@ def excerpt(line: bytes | OversizeLine) -> str:
 
 
 class CaptureLines:
-    """The lines of one capture file, numbered from 1, read block by block.
+    """The lines of one capture file, numbered from ``first_line``, read block by block.
 
     Iterating yields ``(number, line)`` with ``line`` the bytes without the newline, or an
     :class:`OversizeLine`; blank lines are counted in ``blank_lines``, not yielded. A problem
     that ends the file raises :class:`FileStopped` after the good lines. ``position`` is the
     (uncompressed) byte offset just past the last line handed out, and ``start`` resumes there.
+
+    A plain (not gzip) file can be read as byte ranges by several readers at once: with ``stop``
+    the reader keeps to the lines that *start* in ``[start, stop)``. Both ends are moved to the
+    start of a line (:func:`line_start_at`), so neighbouring ranges share no line and miss none.
+    ``disk_position`` is how far into the file on disk reading got (compressed bytes for gzip),
+    for progress shown by bytes.
     """
 
-    def __init__(self, path: Path, start: int = 0, first_line: int = 1):
+    def __init__(self, path: Path, start: int = 0, first_line: int = 1, stop: int | None = None,
+                 disk_position: int = 0):
+        if stop is not None and is_gzip_name(path):
+            raise ValueError("a gzip stream cannot be read from the middle: no byte ranges")
         self.path = path
         self.start = start
+        self.stop = stop
         self.position = start
         self.next_line = first_line
         self.blank_lines = 0
+        self._disk_position = disk_position
+        self._counted = self.disk_position  # bytes up to here were reported by new_bytes()
+
+    @property
+    def disk_position(self) -> int:
+        return self._disk_position if is_gzip_name(self.path) else self.position
+
+    def new_bytes(self) -> int:
+        """Bytes on disk read since the last call (a range counts from its first line's start)."""
+        moved = max(0, self.disk_position - self._counted)
+        self._counted += moved
+        return moved
 
     def __iter__(self) -> Iterator[tuple[int, bytes | OversizeLine]]:
         with self.path.open("rb") as fh:
             if is_gzip_name(self.path):
-                yield from self._split(_inflated_blocks(fh), skip=self.start)
-            else:
-                fh.seek(self.start)
-                yield from self._split(iter(lambda: fh.read(BLOCK_BYTES), b""), skip=0)
+                yield from self._split(self._tracked(_inflated_blocks(fh), fh), skip=self.start)
+                return
+            if self.start:
+                self.start = self.position = self._counted = line_start_at(fh, self.start)
+            end = None if self.stop is None else line_start_at(fh, self.stop)
+            fh.seek(self.start)
+            yield from self._split(_plain_blocks(fh, self.start, end), skip=0)
+
+    def _tracked(self, blocks: Iterator[bytes], fh: BinaryIO) -> Iterator[bytes]:
+        for block in blocks:
+            self._disk_position = max(self._disk_position, fh.tell())
+            yield block
 
     def _split(self, blocks: Iterator[bytes], skip: int) -> Iterator[tuple[int, bytes | OversizeLine]]:
         # Invariant: ``position + len(carry)`` bytes are consumed; ``carry`` is an unfinished line.
@@ -140,7 +178,7 @@ class CaptureLines:
                 else:
                     yield self._number(), line
                 block = block[end + 1:]
-            if not block.strip() and not carry.strip():
+            if is_blank(block) and is_blank(carry):
                 # only blank lines (a "bomb of newlines" is this): counted, not split
                 last = block.rfind(b"\n")
                 if last >= 0:
@@ -156,7 +194,7 @@ class CaptureLines:
                 carry = lines.pop()
                 for line in lines:
                     self.position += len(line) + 1
-                    if not line.strip():
+                    if is_blank(line):
                         self.blank_lines += 1
                         self.next_line += 1
                     elif len(line) > MAX_LINE_BYTES:
@@ -164,7 +202,7 @@ class CaptureLines:
                     else:
                         yield self._number(), line
             if len(carry) > MAX_LINE_BYTES:
-                oversize, carry = OversizeLine(len(carry), carry[:EXCERPT_BYTES], not carry.strip()), b""
+                oversize, carry = OversizeLine(len(carry), carry[:EXCERPT_BYTES], is_blank(carry)), b""
         if oversize is not None:
             self.position += oversize.length
             if oversize.blank:
@@ -172,7 +210,7 @@ class CaptureLines:
                 self.next_line += 1
             else:
                 yield self._number(), oversize
-        elif carry.strip():  # a last line without its newline is still a line
+        elif not is_blank(carry):  # a last line without its newline is still a line
             self.position += len(carry)
             yield self._number(), carry
 
@@ -180,6 +218,34 @@ class CaptureLines:
         number = self.next_line
         self.next_line += 1
         return number
+
+
+def line_start_at(fh: BinaryIO, offset: int) -> int:
+    """The offset of the first line of a plain file starting at or after ``offset``: ``offset``
+    itself at 0 or just after a newline, else just past the next newline (the end of the file
+    when there is none). Reads forward block by block: a long line costs time, not memory."""
+    if offset <= 0:
+        return 0
+    fh.seek(offset - 1)
+    at = offset - 1
+    while block := fh.read(SCAN_BYTES):
+        found = block.find(b"\n")
+        if found >= 0:
+            return at + found + 1
+        at += len(block)
+    return at
+
+
+def _plain_blocks(fh: BinaryIO, start: int, end: int | None) -> Iterator[bytes]:
+    """Blocks of a plain file from ``start`` (the file's position) up to ``end`` (None: its end)."""
+    left = None if end is None else end - start
+    while left is None or left > 0:
+        block = fh.read(BLOCK_BYTES if left is None else min(BLOCK_BYTES, left))
+        if not block:
+            return
+        if left is not None:
+            left -= len(block)
+        yield block
 
 
 def _inflated_blocks(fh: BinaryIO) -> Iterator[bytes]:

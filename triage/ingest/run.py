@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import hashlib
+from collections import Counter
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 from pathlib import Path
-from typing import Callable, Iterable
+from typing import TYPE_CHECKING, Callable, Iterable
 
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -21,10 +23,18 @@ CAPTURE_SUFFIXES = (".jsonl", ".jsonl.gz")
 REMOVAL_SUFFIXES = (".csv",)
 #: Captures per commit, at most: a night of a 100k-drive fleet in one or two commits, so each day
 #: gets few Parquet parts, while a batch of decoded rows stays well under 1 GB whatever the size
-#: of the files (benchmarks/ingest.py measures the peak on a 2 GB file).
+#: of the files (benchmarks/big_file.py measures the peak on a 2 GB file). Smaller commits would
+#: overlap more with the decoding but cost more CPU in all (each reads back the keys stored on
+#: its days): on 2 cores, 50,000 made 60k captures in small files about a second slower.
 COMMIT_LINES = 4 * BATCH_LINES
+#: Files at least this large get their digest worked out beside their decoding when their size
+#: rules out that they were stored before (hashing 325 MB is a third of a second of one core).
+LATE_DIGEST_BYTES = 64 * 2**20
 #: Rejected lines whose excerpt the report keeps in memory (all of them are in the quarantine).
 REPORT_TEXTS = 100
+
+if TYPE_CHECKING:
+    from triage.engine import _Engine
 
 
 @dataclass
@@ -92,8 +102,13 @@ def ingest_paths(
     progress: Callable[[int, int], None] | None = None,
     now: datetime | None = None,
     workers: int | None = None,
+    engine: "_Engine | None" = None,
 ) -> IngestReport:
     """Ingest files (or directories of them) into ``store``; files already ingested are skipped.
+
+    Capture files are read and decoded as tasks on ``engine`` (triage/engine.py; default: local
+    processes, ``workers`` of them); only this process commits, so every commit is whole
+    whichever engine decoded. ``progress(done, total)`` counts bytes of the files read.
 
     Captures are committed in batches of at most ``COMMIT_LINES`` lines, so memory does not grow
     with the files; a file is listed in the manifest by the commit holding its last line (a run
@@ -103,61 +118,135 @@ def ingest_paths(
     """
     report = IngestReport()
     files = find_inputs(paths, report.empty_folders)
+    with ThreadPoolExecutor(1, "digest") as hasher, _Committer(store, report) as committer:
+        todo, digests, unreadable = _new_files(store, files, report, hasher)
+        removals = [p for p in todo if _kind(p) == "removals"]
+        captures = [p for p in todo if _kind(p) == "capture"]
+        total = sum(file_size(p) for p in todo)
+        done = 0
+
+        def advance(nbytes: int) -> None:
+            nonlocal done
+            done = min(total, done + nbytes)  # a file that grew while read never overshoots
+            if progress:
+                progress(done, total)
+
+        if unreadable:
+            _commit(store, report, {}, unreadable, 0, [])
+        if removals:
+            rows, bad, count = parse_removal_files(removals, now=now)
+            _commit(store, report, {"removals": rows}, bad, count, [(p, digests[p]) for p in removals])
+            advance(sum(file_size(p) for p in removals))
+        parts: list[CaptureBatch] = []
+        finished: list[Path] = []
+        held = 0
+        for batch, files_done in capture_parts(captures, engine=engine, workers=workers, now=now):
+            parts.append(batch)
+            held += batch.lines
+            finished += files_done
+            advance(batch.read_bytes)
+            if held >= COMMIT_LINES:
+                committer.submit(parts, [(p, digests[p]) for p in finished])
+                parts, finished, held = [], [], 0
+        if parts or finished:
+            committer.submit(parts, [(p, digests[p]) for p in finished])
+    advance(total)
+    return report
+
+
+def _new_files(store: Store, files: list[Path], report: IngestReport, hasher: ThreadPoolExecutor
+               ) -> tuple[list[Path], dict[Path, str | Future], list[Rejected]]:
+    """The files not stored before (a repeat is counted in ``report.files_skipped``), their
+    SHA-256 digests, and a quarantine line for each file that could not be read.
+
+    A large file whose size neither a stored file nor another input has cannot be a repeat: its
+    digest (needed for the manifest) is worked out by ``hasher`` while the file is decoded."""
     known = store.ingested_digests()
-    todo: list[tuple[Path, str]] = []
+    known_sizes = {f.get("size") for entry in store.manifest() for f in entry.get("files", [])}
+    sizes = {path: file_size(path) for path in files}
+    size_counts = Counter(sizes.values())
+    todo: list[Path] = []
+    digests: dict[Path, str | Future] = {}
     unreadable: list[Rejected] = []
     for path in files:
+        size = sizes[path]
+        if size >= LATE_DIGEST_BYTES and size not in known_sizes and size_counts[size] == 1:
+            digests[path] = hasher.submit(file_digest, path)
+            todo.append(path)
+            continue
         try:
             digest = file_digest(path)
         except OSError as exc:  # left out of the manifest: tried again next run
-            unreadable.append(Rejected(display_name(path), 1, None, f"file unreadable: {exc.strerror or exc}", ""))
+            unreadable.append(_unreadable(path, exc))
             continue
         if digest in known:
             report.files_skipped += 1
         else:
             known.add(digest)
-            todo.append((path, digest))
-    digests = dict(todo)
-    removals = [p for p, _ in todo if _kind(p) == "removals"]
-    captures = [p for p, _ in todo if _kind(p) == "capture"]
-    done = 0
-    if unreadable:
-        _commit(store, report, {}, unreadable, 0, [])
-    if removals:
-        rows, bad, count = parse_removal_files(removals, now=now)
-        _commit(store, report, {"removals": rows}, bad, count, [(p, digests[p]) for p in removals])
-        done += len(removals)
-        if progress:
-            progress(done, len(todo))
-    parts: list[CaptureBatch] = []
-    finished: list[Path] = []
-    held = 0
-    for batch, files_done in capture_parts(captures, workers=workers, now=now):
-        parts.append(batch)
-        held += batch.lines
-        finished += files_done
-        if held >= COMMIT_LINES:
-            _commit_captures(store, report, parts, [(p, digests[p]) for p in finished])
-            done += len(finished)
-            parts, finished, held = [], [], 0
-            if progress:
-                progress(done, len(todo))
-    if parts or finished:
-        _commit_captures(store, report, parts, [(p, digests[p]) for p in finished])
-        done += len(finished)
-        if progress:
-            progress(done, len(todo))
-    return report
+            digests[path] = digest
+            todo.append(path)
+    return todo, digests, unreadable
+
+
+class _Committer:
+    """Capture commits in a thread beside the decoding, one at a time and in order: while one
+    batch is written, the engine's workers decode the next. At most one commit is in flight
+    (memory); leaving waits for it, and its error, if any, is raised."""
+
+    def __init__(self, store: Store, report: IngestReport):
+        self.store, self.report = store, report
+        self.pool = ThreadPoolExecutor(1, "commit")
+        self.in_flight: Future | None = None
+
+    def submit(self, parts: list[CaptureBatch], files: list[tuple[Path, str | Future]]) -> None:
+        self.wait()
+        self.in_flight = self.pool.submit(_commit_captures, self.store, self.report, parts, files)
+
+    def wait(self) -> None:
+        if self.in_flight is not None:
+            in_flight, self.in_flight = self.in_flight, None
+            in_flight.result()
+
+    def __enter__(self) -> "_Committer":
+        return self
+
+    def __exit__(self, kind, *exc) -> None:
+        try:
+            if kind is None:
+                self.wait()
+        finally:  # on an error, a commit under way still finishes whole before this returns
+            self.pool.shutdown(wait=True)
+
+
+def _unreadable(path: Path, exc: OSError) -> Rejected:
+    return Rejected(display_name(path), 1, None, f"file unreadable: {exc.strerror or exc}", "")
 
 
 def _commit_captures(store: Store, report: IngestReport, parts: list[CaptureBatch],
-                     files: list[tuple[Path, str]]) -> None:
+                     files: list[tuple[Path, str | Future]]) -> None:
     batch = CaptureBatch.join(parts)
+    files, late = _digests_of(files)
+    batch.rejected += late
     snapshots, attributes = first_capture_wins(store, batch.snapshots, batch.attributes)
     report.clamped += batch.clamped
     report.repeated += batch.snapshots.num_rows - snapshots.num_rows
     _commit(store, report, {"snapshots": snapshots, "attributes": attributes},
             batch.rejected, batch.lines, files)
+
+
+def _digests_of(files: list[tuple[Path, str | Future]]) -> tuple[list[tuple[Path, str]], list[Rejected]]:
+    """The digests worked out beside the decoding, waited for; a file that could not be read
+    for its digest is left out of the manifest (tried again next run) with a quarantine line."""
+    ready, failed = [], []
+    for path, digest in files:
+        if isinstance(digest, Future):
+            try:
+                digest = digest.result()
+            except OSError as exc:
+                failed.append(_unreadable(path, exc))
+                continue
+        ready.append((path, digest))
+    return ready, failed
 
 
 def first_capture_wins(store: Store, snapshots: pa.Table, attributes: pa.Table) -> tuple[pa.Table, pa.Table]:

@@ -9,7 +9,15 @@ from typing import Callable, Iterator
 
 from rich.console import Console
 from rich.markup import escape
-from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+from rich.progress import (
+    BarColumn,
+    DownloadColumn,
+    MofNCompleteColumn,
+    Progress,
+    TextColumn,
+    TimeElapsedColumn,
+    TransferSpeedColumn,
+)
 
 from triage.safety import TEXT_LIMIT, name, visible
 
@@ -34,12 +42,14 @@ def stdout_console() -> Console:
 
 
 @contextmanager
-def progress_bar(label: str) -> Iterator[Callable[[int, int], None]]:
-    """A progress callback ``(done, total)``: a bar on a terminal's stderr, silent elsewhere."""
+def progress_bar(label: str, *, in_bytes: bool = False) -> Iterator[Callable[[int, int], None]]:
+    """A progress callback ``(done, total)``: a bar on a terminal's stderr, silent elsewhere.
+    ``in_bytes``: the counts are bytes (shown as sizes, with the rate)."""
     if not sys.stderr.isatty():
         yield lambda done, total: None
         return
-    with Progress(TextColumn(label), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
+    counts = (DownloadColumn(), TransferSpeedColumn()) if in_bytes else (MofNCompleteColumn(),)
+    with Progress(TextColumn(label), BarColumn(), *counts, TimeElapsedColumn(),
                   console=stderr_console(), transient=True) as bar:
         task = bar.add_task(label, total=None)
 
