@@ -55,7 +55,7 @@ def dask_engine(cluster):
 @pytest.fixture(scope="module")
 def store_root(tmp_path_factory):
     root = tmp_path_factory.mktemp("fleet")
-    simulated_store(root, n_drives=400, days=70, seed=13, scale_hours=25_000)
+    simulated_store(root, n_drives=250, days=63, seed=13, scale_hours=25_000)
     return root
 
 
@@ -188,8 +188,17 @@ class LosingEngine(DaskEngine):
         return self._client.submit(killer, (self.marker, fn, item), pure=False, retries=TASK_RETRIES)
 
 
+@pytest.fixture
+def killing(cluster):
+    """The cluster, brought back to two workers after the test killed some (the nanny restarts them)."""
+    yield cluster
+    with distributed.Client(cluster, set_as_default=False) as client:
+        client.wait_for_workers(2, timeout=60)
+
+
 def test_a_worker_dying_mid_fit_has_its_task_run_again_and_the_same_model_comes_out(fits, store_root, tmp_path,
-                                                                                     cluster):
+                                                                                     killing):
+    cluster = killing
     store = fresh_copy(store_root, tmp_path)
     with LosingEngine(cluster.scheduler_address, tmp_path / "died", every_time=False) as engine:
         _, path = fit_store(store, engine=engine)
@@ -197,7 +206,8 @@ def test_a_worker_dying_mid_fit_has_its_task_run_again_and_the_same_model_comes_
     assert FleetRiskModel.load(path).landmark_.to_dict() == fits["here"][1].landmark_.to_dict()
 
 
-def test_workers_that_keep_dying_fail_the_fit_with_one_line_and_no_model_saved(store_root, tmp_path, cluster):
+def test_workers_that_keep_dying_fail_the_fit_with_one_line_and_no_model_saved(store_root, tmp_path, killing):
+    cluster = killing
     store = fresh_copy(store_root, tmp_path)
     with LosingEngine(cluster.scheduler_address, tmp_path / "died", every_time=True) as engine:
         with pytest.raises(EngineError) as caught:

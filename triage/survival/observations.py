@@ -271,7 +271,8 @@ def _removal_pins(serials: np.ndarray, same: np.ndarray, stamp_ns: np.ndarray, m
         return pinned
     starts = np.flatnonzero(~same)
     ends = np.r_[starts[1:], len(serials)]
-    removed = np.isin(serials[starts], list(marks))
+    # a dict lookup per drive: np.isin on strings compares every drive with every removal
+    removed = np.fromiter((serial in marks for serial in serials[starts]), dtype=bool, count=len(starts))
     for lo, hi in zip(starts[removed], ends[removed]):
         after = lo + np.searchsorted(stamp_ns[lo:hi], marks[serials[lo]], side="right")
         pinned[after[after < hi]] = True
