@@ -14,7 +14,8 @@ Variants, each in a fresh child process (so each peak RSS is that run's alone):
 Every variant prints a digest of its result (the landmark model's coefficients and covariance,
 the cohort table, the exclusions; the backtest's tables): the digests must all be equal.
 Figures are ratios against ``inline`` in the same run; absolute times depend on the machine's
-load. Peak memory is the command's process and, separately, its largest worker.
+load, so the CPU seconds (the command and its workers together) say what the work cost.
+Peak memory is the command's process and, separately, its largest worker.
 
     .venv/bin/python benchmarks/dask_engine.py [--drives 100000] [--days 90] [--keep DIR]
         [--backtest-drives 10000] [--baseline-src /work/main] [--skip-backtest]
@@ -97,8 +98,11 @@ def measure_backtest(root: Path, variant: str) -> dict:
 
 
 def peaks() -> dict:
-    return {"peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
-            "worker_peak_rss_mb": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024}
+    """Peak memory of this process and of its largest worker; CPU seconds of both (workers are
+    counted once they have exited: the engine is closed before this is called)."""
+    me, workers = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return {"peak_rss_mb": me.ru_maxrss / 1024, "worker_peak_rss_mb": workers.ru_maxrss / 1024,
+            "cpu_seconds": me.ru_utime + me.ru_stime + workers.ru_utime + workers.ru_stime}
 
 
 def child(kind: str, variant: str, root: Path, baseline_src: Path | None) -> dict:
@@ -118,7 +122,7 @@ def compare(kind: str, root: Path, variants: list[str], baseline_src: Path | Non
     print(f"{kind} on {root.name}:")
     for variant, r in results.items():
         print(f"  {variant:7s} wall {r['seconds']:6.1f} s ({r['seconds'] / base['seconds']:.2f}x inline; engine start "
-              f"{r['engine_start_seconds']:.1f} s), peak RSS {r['peak_rss_mb']:.0f} MB, largest worker "
+              f"{r['engine_start_seconds']:.1f} s), CPU {r['cpu_seconds']:.0f} s, peak RSS {r['peak_rss_mb']:.0f} MB, largest worker "
               f"{r['worker_peak_rss_mb']:.0f} MB, digest {r['digest']}")
     same = len({r["digest"] for r in results.values()}) == 1
     print(f"  identical results on every engine: {'yes' if same else 'NO'}")
