@@ -18,7 +18,7 @@ load, so the CPU seconds (the command and its workers together) say what the wor
 Peak memory is the command's process and, separately, its largest worker.
 
     .venv/bin/python benchmarks/dask_engine.py [--drives 100000] [--days 90] [--keep DIR]
-        [--backtest-drives 10000] [--baseline-src /work/main] [--skip-backtest]
+        [--backtest-drives 20000] [--backtest-days 150] [--baseline-src /work/main] [--skip-fit|--skip-backtest]
 """
 
 from __future__ import annotations
@@ -131,8 +131,10 @@ def compare(kind: str, root: Path, variants: list[str], baseline_src: Path | Non
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--drives", type=int, default=100_000)
-    parser.add_argument("--backtest-drives", type=int, default=10_000)
+    parser.add_argument("--backtest-drives", type=int, default=20_000)
     parser.add_argument("--days", type=int, default=90)
+    parser.add_argument("--backtest-days", type=int, default=150,
+                        help="nights of the backtest's store (150: three refit blocks of scored nights)")
     parser.add_argument("--keep", type=Path, help="generate into / reuse this folder")
     parser.add_argument("--baseline-src", type=Path, help="also run the code in this checkout (PYTHONPATH)")
     parser.add_argument("--skip-fit", action="store_true")
@@ -150,14 +152,14 @@ def main() -> None:
     work = args.keep or Path(tempfile.mkdtemp(prefix="triage-engine-bench-"))
     variants = [*VARIANTS, *(["main"] if args.baseline_src else [])]
     print(f"machine: {os.cpu_count()} cores visible, load {os.getloadavg()[0]:.1f}")
-    for kind, drives, skip in (("fit", args.drives, args.skip_fit), ("backtest", args.backtest_drives,
-                                                                      args.skip_backtest)):
+    for kind, drives, days, skip in (("fit", args.drives, args.days, args.skip_fit),
+                                     ("backtest", args.backtest_drives, args.backtest_days, args.skip_backtest)):
         if skip:
             continue
-        root = work / f"{drives}-drives-{args.days}-days"
+        root = work / f"{drives}-drives-{days}-days"
         if not (root / "snapshots").is_dir():
             t = time.perf_counter()
-            counts = generate_store(root, drives, args.days)
+            counts = generate_store(root, drives, days)
             print(f"generated {root.name}: {counts} in {time.perf_counter() - t:.0f} s", file=sys.stderr)
         compare(kind, root, variants, args.baseline_src)
 

@@ -7,6 +7,11 @@ are those in service then (seen in the week before, not removed). The replay rea
 captures at a time and keeps only a rule window of them plus a few rows per drive
 (``landmark.StateTracker``): the work per night does not grow with the history.
 
+The nights are replayed in stretches (``replay_stretch``, up to ``STRETCH_NIGHTS`` scored nights
+of one refit block), each from the drive states at its warm-up night, so an engine can replay
+them side by side (docs/scale.md); a stretch sees exactly the window, growth base and model the
+night-by-night replay would, and the tallies merge in night order.
+
 Definitions (drive level, as in the disk-failure prediction literature: Hughes, Murray,
 Kreutz-Delgado & Elkan, "Improved disk-drive failure warnings", IEEE Trans. Reliability 51(3),
 2002; Murray, Hughes & Kreutz-Delgado, JMLR 6, 2005):
@@ -93,7 +98,7 @@ class _Method:
 
     def __init__(self) -> None:
         self.first_caught: dict[int, int] = {}  # failure index -> first flagged night (ns)
-        self.false_alarm: set[int] = set()  # drive codes
+        self.false_alarm: set = set()  # drive codes (serials inside a stretch)
 
     def update(self, flagged: np.ndarray, positive_failure: np.ndarray, negative: np.ndarray,
                codes: np.ndarray, moment_ns: int) -> None:
@@ -220,6 +225,8 @@ def backtest_store(store, ruleset, horizon_days: float = 30, max_false_alarm: fl
                 forecast_origin = model is not None and moment + pd.Timedelta(days=H) <= data_end
             history_pass.run_until(warm_from[start])
             latest, known_first = history_pass.taken[warm_from[start]]
+            for night in [n for n in history_pass.taken if n < warm_from[start]]:  # stretches come in order
+                del history_pass.taken[night]
             yield _Stretch(store=source, columns=columns, data_first=data_first, warm_from=warm_from[start],
                            first_night=start, last_night=end, latest=latest, first=known_first, model=model,
                            forecast_origin=forecast_origin and refit, removals=removals, fail_serial=fail_serial,
