@@ -34,7 +34,8 @@ import tempfile
 import time
 from pathlib import Path
 
-sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+# appended, not prepended: a "main" child takes triage from $PYTHONPATH (the baseline checkout)
+sys.path.append(str(Path(__file__).resolve().parent.parent))
 
 VARIANTS = ("inline", "local", "dask")
 
@@ -73,7 +74,7 @@ def measure_fit(root: Path, variant: str) -> dict:
     shutil.rmtree(root / "models", ignore_errors=True)
     result = digest(json.dumps(model.landmark_.to_dict(), sort_keys=True),
                     model.cohort_table_.to_csv(), model.exclusions_.to_csv())
-    return {"seconds": seconds, "engine_start_seconds": started, **peaks(), "digest": result}
+    return {"seconds": seconds, "engine_start_seconds": started, **peaks(), "digest": result, "source": source()}
 
 
 def measure_backtest(root: Path, variant: str) -> dict:
@@ -94,7 +95,14 @@ def measure_backtest(root: Path, variant: str) -> dict:
     result_digest = digest(result.methods.to_csv(), result.curve.to_csv(), result.forecasts.to_csv(),
                            json.dumps(result.operating_point, sort_keys=True), "|".join(result.refits),
                            "|".join(result.notes))
-    return {"seconds": seconds, "engine_start_seconds": started, **peaks(), "digest": result_digest}
+    return {"seconds": seconds, "engine_start_seconds": started, **peaks(), "digest": result_digest,
+            "source": source()}
+
+
+def source() -> str:
+    import triage
+
+    return str(Path(triage.__file__).resolve().parent.parent)
 
 
 def peaks() -> dict:
@@ -123,7 +131,7 @@ def compare(kind: str, root: Path, variants: list[str], baseline_src: Path | Non
     for variant, r in results.items():
         print(f"  {variant:7s} wall {r['seconds']:6.1f} s ({r['seconds'] / base['seconds']:.2f}x inline; engine start "
               f"{r['engine_start_seconds']:.1f} s), CPU {r['cpu_seconds']:.0f} s, peak RSS {r['peak_rss_mb']:.0f} MB, largest worker "
-              f"{r['worker_peak_rss_mb']:.0f} MB, digest {r['digest']}")
+              f"{r['worker_peak_rss_mb']:.0f} MB, digest {r['digest']}, code {r['source']}")
     same = len({r["digest"] for r in results.values()}) == 1
     print(f"  identical results on every engine: {'yes' if same else 'NO'}")
 

@@ -223,3 +223,11 @@ def test_fit_on_the_dask_engine_from_the_command_line(store_root, tmp_path, clus
     assert result.exit_code == Exit.OK, result.output
     assert "map steps on dask at" in result.stderr
     assert json.loads(result.stdout) and len(saved_models(store)) == 1
+
+
+def test_fit_without_an_engine_option_runs_in_its_own_process(store_root, tmp_path, monkeypatch):
+    monkeypatch.delenv("TRIAGE_SCHEDULER", raising=False)
+    store = fresh_copy(store_root, tmp_path)
+    result = runner.invoke(app, ["fit", "--format", "json", "--store", str(store.root)])
+    assert result.exit_code == Exit.OK, result.output
+    assert "fit: map steps on this process" in result.stderr and len(saved_models(store)) == 1

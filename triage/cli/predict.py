@@ -9,8 +9,9 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import (EngineChoice, EngineOption, OutputFormat, SchedulerOption, StoreOption, app, fail,
-                               format_option, open_engine_options, open_store, say)
+from triage.cli.common import (EngineChoice, EngineOption, OutputFormat, SchedulerOption, StoreOption, app,
+                               engine_text, fail, format_option, open_engine_options, open_store,
+                               pool_only_if_asked, say)
 from triage.cli.risk import NoDefaultRulesOption, RulesOption, _risk_inputs
 from triage.exitcodes import Exit
 
@@ -57,9 +58,10 @@ def backtest(
     ruleset, _ = _risk_inputs(rules, no_default_rules, None)
     first_night, last_night = _night(first, "--from"), _night(last, "--to")
     # the engine before the store: a scheduler that cannot be reached stops the run untouched
-    with open_engine_options(engine, scheduler) as runner:
+    with open_engine_options(engine, scheduler) as opened:
+        runner = pool_only_if_asked(opened, engine)
         target = open_store(store)
-        say(f"backtest: nights replayed on {runner.describe()}")
+        say(f"backtest: nights replayed on {engine_text(runner)}")
         try:
             with progress_bar("replaying nights") as update:
                 result = backtest_store(target, ruleset, horizon_days=horizon_days, max_false_alarm=max_false_alarm,

@@ -9,7 +9,8 @@ from typing import Optional
 import typer
 
 from triage.cli.common import (EngineChoice, EngineOption, OutputFormat, SchedulerOption, StaleOption, StoreOption, app,
-                               fail, format_option, open_engine_options, open_store, say)
+                               engine_text, fail, format_option, open_engine_options, open_store, pool_only_if_asked,
+                               say)
 from triage.exitcodes import Exit
 
 
@@ -82,9 +83,10 @@ def fit(
     from triage.survival.run import fit_store
 
     # the engine first: a scheduler that cannot be reached stops the run before the store is touched
-    with open_engine_options(engine, scheduler) as runner:
+    with open_engine_options(engine, scheduler) as opened:
+        runner = pool_only_if_asked(opened, engine)
         target = open_store(store)
-        say(f"fit: map steps on {runner.describe()}")
+        say(f"fit: map steps on {engine_text(runner)}")
         with progress_bar("reading snapshots") as update:
             model, path = _survival_call(fit_store, target, horizon_days=horizon_days, by=by,
                                          count_proactive=events is Events.replacements,
