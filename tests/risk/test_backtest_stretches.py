@@ -1,15 +1,16 @@
-"""The backtest replays its nights in stretches, each from the drive states at its warm-up night:
-cutting the nights into three-night stretches or into whole refit blocks gives the same result
-(the warm-up rebuilds exactly the rule window, growth base and in-service drives of the
-night-by-night replay), so stretches can run anywhere. Exactness check of our own decomposition:
-the reference is the same replay without cuts; the scores themselves are checked against hand
-counts in test_backtest.py."""
+"""The backtest replays its nights either in one loop (in the command's process) or in stretches
+that an engine runs anywhere, each from the drive states at its warm-up night. The stretches
+give the one loop's result exactly: the warm-up rebuilds the rule window, growth base and
+in-service drives of the night-by-night replay. Exactness check of our own decomposition: the
+reference is the one-loop replay; the scores themselves are checked against hand counts in
+test_backtest.py."""
 
 from __future__ import annotations
 
 import pandas as pd
 import pytest
 
+from triage.engine import LocalEngine
 from triage.risk import backtest
 from triage.risk.backtest import backtest_store
 from triage.rules import load_rules
@@ -49,17 +50,18 @@ def store(tmp_path_factory):
     return target
 
 
-def replay(store, monkeypatch, stretch_nights):
-    monkeypatch.setattr(backtest, "STRETCH_NIGHTS", stretch_nights)
+def replay(store, engine=None):
     return backtest_store(store, load_rules([], include_defaults=True), horizon_days=10, refit_days=8,
-                          max_false_alarm=0.2)
+                          max_false_alarm=0.2, engine=engine)
 
 
-def test_three_night_stretches_give_the_result_of_whole_refit_blocks(store, monkeypatch):
-    whole = replay(store, monkeypatch, 10_000)
-    short = replay(store, monkeypatch, 3)
+def test_three_night_stretches_give_the_result_of_the_one_loop_replay(store, monkeypatch):
+    monkeypatch.setattr(backtest, "STRETCH_NIGHTS", 3)
+    whole = replay(store)
+    with LocalEngine(workers=1) as inline:  # stretches, run one after another in this process
+        short = replay(store, inline)
     assert whole.methods["failures"].iloc[0] > 0 and len(whole.refits) >= 2
     pd.testing.assert_frame_equal(whole.methods, short.methods, check_exact=True)
     pd.testing.assert_frame_equal(whole.curve, short.curve, check_exact=True)
     pd.testing.assert_frame_equal(whole.forecasts, short.forecasts, check_exact=True)
-    assert whole.operating_point == short.operating_point
+    assert (whole.operating_point, whole.refits, whole.notes) == (short.operating_point, short.refits, short.notes)

@@ -204,38 +204,49 @@ def backtest_store(store, ruleset, horizon_days: float = 30, max_false_alarm: fl
     source = task_store(store, engine)
     history_pass = _HistoryPass(store, columns, data_first, landmarks, removals, set(warm_from.values()))
 
+    def refit(day: pd.Timestamp, landmark_frames: list[pd.DataFrame]):
+        """(model, whether its forecast can be checked) fitted on the landmark rows before the night."""
+        moment = day + pd.Timedelta(days=1)
+        known_removals = removals[removals["removed_at"] <= moment]
+        train = pd.concat(landmark_frames, ignore_index=True) if landmark_frames else None
+        try:
+            if train is None:
+                raise FitError("no landmark yet")
+            train = train[train["landmark"] < moment]
+            outcomes = window_outcomes(train, known_removals, H, moment, events)
+            model = LandmarkModel(horizon_days=H, by=by).fit(train, outcomes)
+            refits.append(f"{day:%Y-%m-%d}")
+        except FitError as exc:
+            model = None
+            notes.append(f"{day:%Y-%m-%d}: no model ({exc}); the combined score is the rules' alone until the next refit")
+        return model, model is not None and moment + pd.Timedelta(days=H) <= data_end
+
     def stretch_items():
         model, forecast_origin = None, False
-        for start, end, refit in stretches:
-            moment = start + pd.Timedelta(days=1)
-            if refit:  # the landmark rows before tonight are known once the pass has replayed to here
+        for start, end, starts_block in stretches:
+            if starts_block:  # the landmark rows before tonight are known once the pass has replayed to here
                 history_pass.run_until(start)
-                known_removals = removals[removals["removed_at"] <= moment]
-                train = pd.concat(history_pass.landmark_frames, ignore_index=True) if history_pass.landmark_frames else None
-                try:
-                    if train is None:
-                        raise FitError("no landmark yet")
-                    train = train[train["landmark"] < moment]
-                    outcomes = window_outcomes(train, known_removals, H, moment, events)
-                    model = LandmarkModel(horizon_days=H, by=by).fit(train, outcomes)
-                    refits.append(f"{start:%Y-%m-%d}")
-                except FitError as exc:
-                    model = None
-                    notes.append(f"{start:%Y-%m-%d}: no model ({exc}); the combined score is the rules' alone until the next refit")
-                forecast_origin = model is not None and moment + pd.Timedelta(days=H) <= data_end
+                model, forecast_origin = refit(start, history_pass.landmark_frames)
             history_pass.run_until(warm_from[start])
             latest, known_first = history_pass.taken[warm_from[start]]
             for night in [n for n in history_pass.taken if n < warm_from[start]]:  # stretches come in order
                 del history_pass.taken[night]
             yield _Stretch(store=source, columns=columns, data_first=data_first, warm_from=warm_from[start],
                            first_night=start, last_night=end, latest=latest, first=known_first, model=model,
-                           forecast_origin=forecast_origin and refit, removals=removals, fail_serial=fail_serial,
-                           fail_ns=fail_ns, horizon_days=H, data_end=data_end, lookback=lookback, ruleset=ruleset,
-                           evaluate=evaluate)
+                           forecast_origin=forecast_origin and starts_block, removals=removals,
+                           fail_serial=fail_serial, fail_ns=fail_ns, horizon_days=H, data_end=data_end,
+                           lookback=lookback, ruleset=ruleset, evaluate=evaluate)
 
-    replayed = (engine.map(replay_stretch, stretch_items()) if engine is not None
-                else (replay_stretch(item) for item in stretch_items()))
-    for (_, end, _), part in zip(stretches, replayed):
+    if engine is None:  # one loop here: each night read once, as the stretches' warm-ups would repeat it
+        parts = [_replay_in_order(store, columns, data_first, nights, first, landmarks, removals,
+                                  {start for start, _, starts_block in stretches if starts_block}, refit,
+                                  _NightScorer(ruleset, evaluate, fail_serial, fail_ns, H, data_end), lookback,
+                                  progress)]
+        ends = [last]
+    else:
+        parts = engine.map(replay_stretch, stretch_items())
+        ends = [end for _, end, _ in stretches]
+    for end, part in zip(ends, parts):
         if progress:
             progress(int((end - data_first) / pd.Timedelta(days=1)), len(nights))
         codes = {serial: codes_of.setdefault(serial, len(codes_of)) for serial in part.serials}
@@ -372,46 +383,32 @@ def _new_methods(rules) -> dict[str, _Method]:
     return methods
 
 
-def replay_stretch(item: _Stretch) -> _StretchTally:
-    """The map step of ``backtest_store`` (runs on an engine's worker): one stretch of nights."""
-    from triage.survival.landmark import StateTracker  # noqa: PLC0415  (survival layer, to our left)
-    from triage.survival.observations import cohort_labels  # noqa: PLC0415
-    from triage.survival.tasks import opened  # noqa: PLC0415
+class _NightScorer:
+    """Scores nights one after another and keeps the drive-level tallies, by serial."""
 
-    H, model, ruleset, removals = item.horizon_days, item.model, item.ruleset, item.removals
-    fail_serial, fail_ns = item.fail_serial, item.fail_ns
-    tracker = StateTracker()
-    tracker.latest, tracker.first = item.latest, item.first
-    nights = _Nights(opened(item.store), item.columns, item.data_first)
-    rules = list(ruleset.rules)
-    methods = _new_methods(rules)
-    severity_rank = {s: i for i, s in enumerate(SEVERITIES)}  # 0 = worst
-    seen: dict = {}
-    pos_max = np.full(len(fail_ns), -1.0)
-    pos_nights: list[tuple[np.ndarray, int, np.ndarray]] = []
-    neg_max: dict = {}
-    forecasts: list[dict] = []
-    window: deque[tuple[pd.Timestamp, pd.DataFrame]] = deque()
-    for day in pd.date_range(item.warm_from, item.last_night, freq="D"):
-        frame = nights.night(day)
+    def __init__(self, ruleset, evaluate: Callable, fail_serial: np.ndarray, fail_ns: np.ndarray,
+                 horizon_days: float, data_end: pd.Timestamp):
+        self.ruleset, self.evaluate, self.rules = ruleset, evaluate, list(ruleset.rules)
+        self.fail_serial, self.fail_ns, self.H, self.data_end = fail_serial, fail_ns, horizon_days, data_end
+        self.methods = _new_methods(self.rules)
+        self.severity_rank = {s: i for i, s in enumerate(SEVERITIES)}  # 0 = worst
+        self.seen: dict = {}
+        self.pos_max = np.full(len(fail_ns), -1.0)
+        self.pos_nights: list[tuple[np.ndarray, int, np.ndarray]] = []
+        self.neg_max: dict = {}
+        self.forecasts: list[dict] = []
+
+    def score(self, day: pd.Timestamp, state: pd.DataFrame, window, model, forecast_origin: bool) -> None:
+        """Tonight's flags and combined score of the in-service drives ``state``."""
+        from triage.survival.observations import cohort_labels  # noqa: PLC0415  (survival layer, to our left)
+
+        H, methods, severity_rank = self.H, self.methods, self.severity_rank
         moment = day + pd.Timedelta(days=1)
-        tracker.add(frame)
-        window.append((day, frame))
-        while window and window[0][0] < moment - pd.Timedelta(days=item.lookback + 1):
-            window.popleft()
-        if day < item.first_night:  # warm-up: the rule window and the growth base
-            tracker.mark(moment)
-            continue
-        known_removals = removals[removals["removed_at"] <= moment]
-        state = tracker.state_at(moment, known_removals)
-        tracker.mark(moment)
-        if state.empty:
-            continue
         serials = state["serial"].to_numpy(dtype=object)
-        seen.update(dict.fromkeys(serials.tolist()))
+        self.seen.update(dict.fromkeys(serials.tolist()))
         p = np.zeros(len(state)) if model is None else np.nan_to_num(model.predict_proba(state, H), nan=0.0)
         history = pd.concat([f for _, f in window], ignore_index=True)
-        flags = item.evaluate(ruleset, history, now=moment.to_pydatetime())
+        flags = self.evaluate(self.ruleset, history, now=moment.to_pydatetime())
         flags = flags[flags["serial"].isin(serials)]
         position = pd.Index(serials).get_indexer(flags["serial"])
         worst = np.full(len(state), len(SEVERITIES))
@@ -421,37 +418,110 @@ def replay_stretch(item: _Stretch) -> _StretchTally:
 
         # which failure (if any) lies within H days after this night, per scored drive
         moment_ns = moment.value
-        upcoming = (fail_ns > moment_ns) & (fail_ns <= moment_ns + int(H * _NS_PER_DAY))
+        upcoming = (self.fail_ns > moment_ns) & (self.fail_ns <= moment_ns + int(H * _NS_PER_DAY))
         positive_failure = np.full(len(state), -1)
         if upcoming.any():
-            where = pd.Index(serials).get_indexer(fail_serial[upcoming])
+            where = pd.Index(serials).get_indexer(self.fail_serial[upcoming])
             hit = where >= 0
             positive_failure[where[hit]] = np.flatnonzero(upcoming)[hit]
         positive = positive_failure >= 0
-        negative = ~positive & (moment_ns + int(H * _NS_PER_DAY) <= item.data_end.value)
+        negative = ~positive & (moment_ns + int(H * _NS_PER_DAY) <= self.data_end.value)
 
         methods[SELF_ASSESSMENT_METHOD].update(state["self_assessment"].to_numpy() > 0, positive_failure,
                                                negative, serials, moment_ns)
         for s in SEVERITIES:
             methods[f"severity:{s}"].update(worst <= severity_rank[s], positive_failure, negative, serials, moment_ns)
         fired_by_rule = flags.groupby("rule_id")
-        for rule in rules:
+        for rule in self.rules:
             flagged = np.zeros(len(state), dtype=bool)
             if rule.id in fired_by_rule.groups:
                 flagged[pd.Index(serials).get_indexer(fired_by_rule.get_group(rule.id)["serial"])] = True
             methods[f"rule:{rule.id}"].update(flagged, positive_failure, negative, serials, moment_ns)
         if positive.any():
-            np.maximum.at(pos_max, positive_failure[positive], score[positive])
-            pos_nights.append((positive_failure[positive], moment_ns, score[positive]))
+            np.maximum.at(self.pos_max, positive_failure[positive], score[positive])
+            self.pos_nights.append((positive_failure[positive], moment_ns, score[positive]))
         for serial, value in zip(serials[negative].tolist(), score[negative].tolist()):
-            if value > neg_max.get(serial, -1.0):
-                neg_max[serial] = value
+            if value > self.neg_max.get(serial, -1.0):
+                self.neg_max[serial] = value
+        if forecast_origin:
+            self.forecasts.extend(_forecast_rows(day, state, model.predict_proba(state, H), positive_failure >= 0,
+                                                 cohort_labels(state, model.by).to_numpy()))
 
-        if item.forecast_origin and day == item.first_night:
-            forecasts.extend(_forecast_rows(day, state, model.predict_proba(state, H), positive_failure >= 0,
-                                            cohort_labels(state, model.by).to_numpy()))
-    return _StretchTally(serials=list(seen), methods={name: (m.first_caught, m.false_alarm) for name, m in methods.items()},
-                         pos_max=pos_max, pos_nights=pos_nights, neg_max=neg_max, forecasts=forecasts)
+    def tally(self) -> _StretchTally:
+        return _StretchTally(serials=list(self.seen),
+                             methods={name: (m.first_caught, m.false_alarm) for name, m in self.methods.items()},
+                             pos_max=self.pos_max, pos_nights=self.pos_nights, neg_max=self.neg_max,
+                             forecasts=self.forecasts)
+
+
+def _slide(window: deque, day: pd.Timestamp, frame: pd.DataFrame, lookback: int) -> None:
+    """Keep the captures of the rule window (``lookback`` days) up to the end of ``day``."""
+    window.append((day, frame))
+    while window and window[0][0] < day + pd.Timedelta(days=1) - pd.Timedelta(days=lookback + 1):
+        window.popleft()
+
+
+def replay_stretch(item: _Stretch) -> _StretchTally:
+    """The map step of ``backtest_store`` (runs on an engine's worker): one stretch of nights."""
+    from triage.survival.landmark import StateTracker  # noqa: PLC0415  (survival layer, to our left)
+    from triage.survival.tasks import opened  # noqa: PLC0415
+
+    removals = item.removals
+    tracker = StateTracker()
+    tracker.latest, tracker.first = item.latest, item.first
+    nights = _Nights(opened(item.store), item.columns, item.data_first)
+    scorer = _NightScorer(item.ruleset, item.evaluate, item.fail_serial, item.fail_ns, item.horizon_days,
+                          item.data_end)
+    window: deque[tuple[pd.Timestamp, pd.DataFrame]] = deque()
+    for day in pd.date_range(item.warm_from, item.last_night, freq="D"):
+        frame = nights.night(day)
+        moment = day + pd.Timedelta(days=1)
+        tracker.add(frame)
+        _slide(window, day, frame, item.lookback)
+        if day < item.first_night:  # warm-up: the rule window and the growth base
+            tracker.mark(moment)
+            continue
+        state = tracker.state_at(moment, removals[removals["removed_at"] <= moment])
+        tracker.mark(moment)
+        if not state.empty:
+            scorer.score(day, state, window, item.model, item.forecast_origin and day == item.first_night)
+    return scorer.tally()
+
+
+def _replay_in_order(store, columns, data_first: pd.Timestamp, nights, first: pd.Timestamp, landmarks,
+                     removals: pd.DataFrame, refit_nights: set, refit: Callable, scorer: _NightScorer,
+                     lookback: int, progress: Callable | None) -> _StretchTally:
+    """The whole replay in one loop, night after night (no engine): the landmark rows, the refits
+    and the scores share each night's reading and drive states."""
+    from triage.survival.landmark import StateTracker  # noqa: PLC0415  (survival layer, to our left)
+
+    reader = _Nights(store, columns, data_first)
+    tracker = StateTracker()
+    window: deque[tuple[pd.Timestamp, pd.DataFrame]] = deque()
+    landmark_frames: list[pd.DataFrame] = []
+    model = None
+    for k, day in enumerate(nights):
+        if progress:
+            progress(k, len(nights))
+        frame = reader.night(day)
+        moment = day + pd.Timedelta(days=1)
+        tracker.add(frame)
+        _slide(window, day, frame, lookback)
+        scored = day >= first
+        # the drives in service tonight: a landmark row for later fits and/or tonight's scores
+        state = (tracker.state_at(moment, removals[removals["removed_at"] <= moment])
+                 if scored or moment in landmarks else None)
+        if moment in landmarks and len(state):
+            landmark_frames.append(state.assign(landmark=moment))
+        tracker.mark(moment)
+        if not scored:
+            continue
+        forecast_origin = False
+        if day in refit_nights:
+            model, forecast_origin = refit(day, landmark_frames)
+        if not state.empty:
+            scorer.score(day, state, window, model, forecast_origin)
+    return scorer.tally()
 
 
 def _ns(stamps: pd.Series) -> np.ndarray:
