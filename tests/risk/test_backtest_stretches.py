@@ -43,10 +43,9 @@ def history():
 
 @pytest.fixture(scope="module")
 def store(tmp_path_factory):
-    target = Store(tmp_path_factory.mktemp("fleet"))
     snapshots, removals = history()
-    target.append("snapshots", snapshots)
-    target.append("removals", removals)
+    target = Store(tmp_path_factory.mktemp("fleet"))
+    target.commit({"snapshots": snapshots, "removals": removals})  # one batch
     return target
 
 
