@@ -90,6 +90,20 @@ def open_engine_options(engine: Optional[EngineChoice], scheduler: Optional[str]
         fail(str(exc), Exit.FAILURE)
 
 
+def pool_only_if_asked(runner, engine: Optional[EngineChoice]):
+    """``runner``, or None (the command's own process) when no --engine was given and no
+    scheduler named: for ``fit`` and ``backtest`` a pool of local processes pays for itself
+    only on idle cores (docs/scale.md), so by default they run as before, in one process."""
+    from triage.engine import LocalEngine
+
+    return None if engine is None and isinstance(runner, LocalEngine) else runner
+
+
+def engine_text(runner) -> str:
+    """Where the map steps run, for stderr."""
+    return "this process" if runner is None else runner.describe()
+
+
 def _version(value: bool) -> None:
     if value:
         typer.echo(f"triage {__version__}")

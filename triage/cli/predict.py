@@ -9,7 +9,9 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import OutputFormat, StoreOption, app, fail, format_option, open_store, say
+from triage.cli.common import (EngineChoice, EngineOption, OutputFormat, SchedulerOption, StoreOption, app,
+                               engine_text, fail, format_option, open_engine_options, open_store,
+                               pool_only_if_asked, say)
 from triage.cli.risk import NoDefaultRulesOption, RulesOption, _risk_inputs
 from triage.exitcodes import Exit
 
@@ -37,9 +39,12 @@ def backtest(
     rules: Optional[list[Path]] = RulesOption,
     no_default_rules: bool = NoDefaultRulesOption,
     store: Optional[Path] = StoreOption,
+    engine: Optional[EngineChoice] = EngineOption,
+    scheduler: Optional[str] = SchedulerOption,
 ) -> None:
     """Replay the stored history night by night: would each rule, each severity, the drive's own
     verdict and the combined score have flagged the drives that failed, and how many healthy ones?"""
+    from triage.engine import EngineError
     from triage.report.console import progress_bar
     from triage.report.predict import plot_backtest, render_backtest
     from triage.risk.backtest import BacktestError, BacktestOptionError, backtest_store
@@ -51,16 +56,21 @@ def backtest(
     if plot is not None and not plot.parent.resolve().is_dir():
         fail(f"{plot}: folder {plot.parent} does not exist", Exit.USAGE)
     ruleset, _ = _risk_inputs(rules, no_default_rules, None)
-    target = open_store(store)
-    try:
-        with progress_bar("replaying nights") as update:
-            result = backtest_store(target, ruleset, horizon_days=horizon_days, max_false_alarm=max_false_alarm,
-                                    first_night=_night(first, "--from"), last_night=_night(last, "--to"),
-                                    refit_days=refit_days, progress=update)
-    except BacktestOptionError as exc:
-        fail(str(exc), Exit.USAGE)
-    except BacktestError as exc:
-        fail(str(exc), Exit.FAILURE)
+    first_night, last_night = _night(first, "--from"), _night(last, "--to")
+    # the engine before the store: a scheduler that cannot be reached stops the run untouched
+    with open_engine_options(engine, scheduler) as opened:
+        runner = pool_only_if_asked(opened, engine)
+        target = open_store(store)
+        say(f"backtest: nights replayed on {engine_text(runner)}")
+        try:
+            with progress_bar("replaying nights") as update:
+                result = backtest_store(target, ruleset, horizon_days=horizon_days, max_false_alarm=max_false_alarm,
+                                        first_night=first_night, last_night=last_night, refit_days=refit_days,
+                                        progress=update, engine=runner)
+        except BacktestOptionError as exc:
+            fail(str(exc), Exit.USAGE)
+        except (BacktestError, EngineError) as exc:
+            fail(str(exc), Exit.FAILURE)
     render_backtest(result, fmt)
     if plot is not None:
         plot_backtest(result, plot)

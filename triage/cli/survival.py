@@ -8,7 +8,9 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import OutputFormat, StaleOption, StoreOption, app, fail, format_option, open_store, say
+from triage.cli.common import (EngineChoice, EngineOption, OutputFormat, SchedulerOption, StaleOption, StoreOption, app,
+                               engine_text, fail, format_option, open_engine_options, open_store, pool_only_if_asked,
+                               say)
 from triage.exitcodes import Exit
 
 
@@ -35,11 +37,12 @@ def _survival_call(function, *args, **kwargs):
     from triage.survival.cohorts import UnknownCohort
     from triage.survival.cox import CoxFitError
     from triage.survival.landmark import FitError
+    from triage.engine import EngineError
     from triage.survival.run import EmptyStore
 
     try:
         return function(*args, **kwargs)
-    except (EmptyStore, CoxFitError, FitError) as exc:
+    except (EmptyStore, CoxFitError, FitError, EngineError) as exc:
         fail(str(exc), Exit.FAILURE)
     except UnknownCohort as exc:
         fail(str(exc), Exit.USAGE)
@@ -71,17 +74,24 @@ def fit(
     events: Events = EventsOption,
     fmt: OutputFormat = format_option("CSV: the covariate rate ratios; JSON: the whole summary"),
     store: Optional[Path] = StoreOption,
+    engine: Optional[EngineChoice] = EngineOption,
+    scheduler: Optional[str] = SchedulerOption,
 ) -> None:
     """Fit the fleet risk model (AFR, Weibull, stratified Cox) and save it under <store>/models."""
     from triage.report.console import progress_bar
     from triage.report.survival import exclusion_lines, render_fit
     from triage.survival.run import fit_store
 
-    target = open_store(store)
-    with progress_bar("reading snapshots") as update:
-        model, path = _survival_call(fit_store, target, horizon_days=horizon_days, by=by,
-                                     count_proactive=events is Events.replacements,
-                                     say=lambda message: say(f"fit: {message}"), progress=update)
+    # the engine first: a scheduler that cannot be reached stops the run before the store is touched
+    with open_engine_options(engine, scheduler) as opened:
+        runner = pool_only_if_asked(opened, engine)
+        target = open_store(store)
+        say(f"fit: map steps on {engine_text(runner)}")
+        with progress_bar("reading snapshots") as update:
+            model, path = _survival_call(fit_store, target, horizon_days=horizon_days, by=by,
+                                         count_proactive=events is Events.replacements,
+                                         say=lambda message: say(f"fit: {message}"), progress=update,
+                                         engine=runner)
     for line in exclusion_lines(model.exclusions_):
         say(line)
     render_fit(model, path, fmt)

@@ -143,22 +143,30 @@ class StateTracker:
         self._marks: list[tuple[pd.Timestamp, pd.DataFrame]] = []  # (moment, latest then) for growth
 
     def add(self, chunk: pd.DataFrame) -> None:
-        if chunk is None or chunk.empty:
+        self.add_ends(chunk_ends(chunk))
+
+    def add_ends(self, ends: "tuple[pd.DataFrame, pd.DataFrame] | None") -> None:
+        """``add`` for a chunk already boiled down by ``chunk_ends`` (where it was read)."""
+        if ends is None:
             return
-        chunk = chunk.loc[:, [c for c in STATE_SOURCES if c in chunk.columns]]
-        chunk = chunk.assign(taken_at=utc_times(chunk["taken_at"]))
-        last = _last_per_serial(chunk)
+        last, head = ends
         if self.latest is None:
             self.latest = last.reset_index(drop=True)
         else:
             merged = pd.concat([self.latest, last], ignore_index=True)
             self.latest = merged.drop_duplicates("serial", keep="last").reset_index(drop=True)
-        head = _first_per_serial(chunk)
         if self.first is None:
             self.first = head.reset_index(drop=True)
         else:
             new = head[~head["serial"].isin(self.first["serial"])]
             self.first = pd.concat([self.first, new], ignore_index=True)
+
+    def snapshot(self) -> "StateTracker":
+        """A copy to carry on from elsewhere (a backtest stretch): the frames are shared, never
+        changed in place (``add`` replaces them)."""
+        copy = StateTracker()
+        copy.latest, copy.first, copy._marks = self.latest, self.first, list(self._marks)
+        return copy
 
     def mark(self, moment: pd.Timestamp) -> None:
         """Remember the latest captures as of ``moment`` (the growth base of later states)."""
@@ -181,6 +189,22 @@ class StateTracker:
             if mark <= base_moment:
                 base = frame
         return state_features(latest, moment, base, self.first)
+
+
+def chunk_ends(chunk: pd.DataFrame | None) -> tuple[pd.DataFrame, pd.DataFrame] | None:
+    """What ``StateTracker`` keeps of a chunk of snapshot rows: each drive's last and first row in
+    it (the state columns, times in UTC); None for an empty chunk. Runs where the chunk was read,
+    so only these rows travel."""
+    if chunk is None or chunk.empty:
+        return None
+    chunk = chunk.loc[:, [c for c in STATE_SOURCES if c in chunk.columns]]
+    chunk = chunk.assign(taken_at=utc_times(chunk["taken_at"]))
+    return _last_per_serial(chunk), _first_per_serial(chunk)
+
+
+def read_ends(read) -> tuple[pd.DataFrame, pd.DataFrame] | None:
+    """The map step of the landmark pass (``tasks.SnapshotRead`` in, ``chunk_ends`` out)."""
+    return chunk_ends(read.read())
 
 
 def states_from_history(history: pd.DataFrame, moment, removals: pd.DataFrame | None = None,
@@ -304,16 +328,20 @@ def landmark_states(read: Callable[[pd.Timestamp | None, pd.Timestamp | None], p
     """
     tracker = StateTracker()
     frames = []
-    previous = None
-    for k, moment in enumerate(landmarks):
+    landmarks = list(landmarks)
+    windows = list(zip([None, *landmarks[:-1]], landmarks))
+    if hasattr(read, "ends"):  # a store reader reads and boils down each window on its engine
+        ends = read.ends(windows)
+    else:
+        ends = (chunk_ends(read(since, until)) for since, until in windows)
+    for k, (moment, chunk) in enumerate(zip(landmarks, ends)):
         if progress:
             progress(k, len(landmarks))
-        tracker.add(read(previous, moment))
+        tracker.add_ends(chunk)
         state = tracker.state_at(moment, removals)
         tracker.mark(moment)
         if len(state):
             frames.append(state.assign(landmark=moment))
-        previous = moment
     if progress:
         progress(len(landmarks), len(landmarks))
     if not frames:
@@ -339,18 +367,38 @@ def frame_reader(snapshots: pd.DataFrame) -> Callable:
     return read
 
 
-def store_reader(store) -> Callable:
-    """``read(since, until)`` over a store's snapshots (only the columns the states need)."""
-    from triage.store.schema import SNAPSHOTS  # noqa: PLC0415  (store layer, to our left)
+class StoreReader:
+    """``read(since, until)`` over a store's snapshots (only the columns the states need), and
+    ``ends(windows)``: each window read and boiled down by ``chunk_ends`` on ``engine`` (None:
+    here), in the order of the windows."""
 
-    columns = [c for c in STATE_SOURCES if c in SNAPSHOTS.names]
+    def __init__(self, store, engine=None):
+        from triage.store.schema import SNAPSHOTS  # noqa: PLC0415  (store layer, to our left)
+        from triage.survival.tasks import task_store  # noqa: PLC0415
 
-    def read(since, until):
-        return store.read("snapshots", columns=columns,
-                          since=None if since is None else utc(since).to_pydatetime(),
-                          until=None if until is None else utc(until).to_pydatetime())
+        self.store, self.engine = store, engine
+        self.columns = tuple(c for c in STATE_SOURCES if c in SNAPSHOTS.names)
+        self._source = task_store(store, engine)
 
-    return read
+    def __call__(self, since, until) -> pd.DataFrame:
+        return self._task(since, until).read()
+
+    def _task(self, since, until):
+        from triage.survival.tasks import SnapshotRead  # noqa: PLC0415
+
+        return SnapshotRead(self._source, self.columns, None if since is None else utc(since),
+                            None if until is None else utc(until))
+
+    def ends(self, windows) -> Iterator:
+        items = (self._task(since, until) for since, until in windows)
+        if self.engine is None:
+            return (read_ends(item) for item in items)
+        return self.engine.map(read_ends, items)
+
+
+def store_reader(store, engine=None) -> StoreReader:
+    """``StoreReader`` of ``store``: ``read(since, until)``, and ``ends`` on ``engine``."""
+    return StoreReader(store, engine)
 
 
 def stored_span(store) -> tuple[pd.Timestamp, pd.Timestamp] | None:

@@ -271,7 +271,8 @@ def _removal_pins(serials: np.ndarray, same: np.ndarray, stamp_ns: np.ndarray, m
         return pinned
     starts = np.flatnonzero(~same)
     ends = np.r_[starts[1:], len(serials)]
-    removed = np.isin(serials[starts], list(marks))
+    # a dict lookup per drive: np.isin on strings compares every drive with every removal
+    removed = np.fromiter((serial in marks for serial in serials[starts]), dtype=bool, count=len(starts))
     for lo, hi in zip(starts[removed], ends[removed]):
         after = lo + np.searchsorted(stamp_ns[lo:hi], marks[serials[lo]], side="right")
         pinned[after[after < hi]] = True
@@ -330,9 +331,16 @@ def scan_frame(snapshots: pd.DataFrame, cut: pd.Timestamp | None = None,
 
 
 def scan_store(store, chunk_days: int = 7, cut: pd.Timestamp | None = None,
-               progress: Callable[[int, int], None] | None = None, removals: pd.DataFrame | None = None) -> Scan:
+               progress: Callable[[int, int], None] | None = None, removals: pd.DataFrame | None = None,
+               engine=None) -> Scan:
     """Scan the store's snapshots in chunks of ``chunk_days`` days (one boundary falls on ``cut``);
-    ``removals`` as in ``scan_frame``."""
+    ``removals`` as in ``scan_frame``.
+
+    ``engine`` (``triage.engine``): where each chunk is read and boiled down (``scan_read``);
+    the chunks are merged here in their order, so every engine gives the same scan. None: here.
+    """
+    from triage.survival.tasks import SnapshotRead, task_store  # noqa: PLC0415
+
     days = store.days("snapshots")
     if not days:
         return Scan(rows=pd.DataFrame(columns=[*SNAPSHOT_COLUMNS, *FEATURES]))
@@ -344,40 +352,89 @@ def scan_store(store, chunk_days: int = 7, cut: pd.Timestamp | None = None,
     if cut is not None and start < cut < end and cut not in bounds:
         bounds = sorted([*bounds, cut])
     windows = list(zip(bounds[:-1], bounds[1:]))
+    marks = removal_marks(removals)
+    source = task_store(store, engine)
+    items = [ScanRead(SnapshotRead(source, SNAPSHOT_COLUMNS, lo, hi),
+                      segment=int(cut is not None and lo >= cut),  # the held-out side is its own segment
+                      marks=marks)
+             for lo, hi in windows]
 
-    def pieces():
-        for i, (lo, hi) in enumerate(windows):
+    def chunks():
+        done = engine.map(scan_read, items) if engine is not None else (scan_read(item) for item in items)
+        for i, chunk in enumerate(done):
             if progress:
                 progress(i, len(windows))
-            segment = int(cut is not None and lo >= cut)  # the held-out side is its own segment
-            yield segment, store.read("snapshots", columns=list(SNAPSHOT_COLUMNS), since=lo.to_pydatetime(),
-                                      until=hi.to_pydatetime())
+            yield chunk
         if progress:
             progress(len(windows), len(windows))
 
-    return _scan_pieces(pieces(), removal_marks(removals))
+    return _merge_chunks(chunks(), marks)
+
+
+@dataclass(frozen=True)
+class ScanRead:
+    """A map task of ``scan_store``: read one chunk of days and boil it down."""
+
+    read: object  # tasks.SnapshotRead
+    segment: int
+    marks: dict | None
+
+
+@dataclass
+class ChunkScan:
+    """One chunk of snapshots boiled down (``_reduce_chunk``) and what was found in it."""
+
+    segment: int
+    rows: pd.DataFrame
+    problems: dict[str, str]
+    serials: np.ndarray  # every serial with a row in the chunk
+    rows_read: int
+    first_taken_at: pd.Timestamp
+    last_taken_at: pd.Timestamp
+
+
+def scan_read(item: ScanRead) -> ChunkScan | None:
+    """The map step of ``scan_store`` (runs on an engine's worker): None for an empty chunk."""
+    return scan_chunk(item.segment, item.read.read(), item.marks)
+
+
+def scan_chunk(segment: int, piece: pd.DataFrame, marks: dict | None = None) -> ChunkScan | None:
+    """Boil one chunk down on its own; ``_merge_chunks`` puts the chunks together."""
+    if piece.empty:
+        return None
+    problems: dict[str, str] = {}
+    taken = pd.to_datetime(piece["taken_at"], utc=True)
+    return ChunkScan(segment=segment, rows=_reduce_chunk(piece, segment, problems, marks), problems=problems,
+                     serials=pd.unique(piece["serial"].dropna()), rows_read=len(piece),
+                     first_taken_at=taken.min(), last_taken_at=taken.max())
 
 
 def _scan_pieces(pieces: Iterable[tuple[int, pd.DataFrame]], marks: dict | None = None) -> Scan:
-    """Reduce (segment, chunk) pieces as they come: each chunk is boiled down, then merged with
-    what its segment kept so far and boiled down again, so memory holds one chunk plus about a
-    row per drive and covariate change -- never the history. A segment (the training and the
-    held-out side of a time cut) keeps each drive's first and last row at its own edges."""
+    """Reduce (segment, chunk) pieces as they come (``_merge_chunks``)."""
+    return _merge_chunks((scan_chunk(segment, piece, marks) for segment, piece in pieces), marks)
+
+
+def _merge_chunks(chunks: Iterable[ChunkScan | None], marks: dict | None = None) -> Scan:
+    """Merge boiled-down chunks in their order: each is merged with what its segment kept so far
+    and boiled down again, so memory holds one chunk plus about a row per drive and covariate
+    change -- never the history. A segment (the training and the held-out side of a time cut)
+    keeps each drive's first and last row at its own edges. A drive's first problem found, in
+    the order of the chunks, is the one reported."""
     problems: dict[str, str] = {}
     seen: set = set()
     segments: dict[int, pd.DataFrame] = {}
     rows_read = 0
     first = last = None
-    for segment, piece in pieces:
-        if piece.empty:
+    for chunk in chunks:
+        if chunk is None:
             continue
-        rows_read += len(piece)
-        seen.update(pd.unique(piece["serial"].dropna()))
-        taken = pd.to_datetime(piece["taken_at"], utc=True)
-        first = taken.min() if first is None else min(first, taken.min())
-        last = taken.max() if last is None else max(last, taken.max())
-        reduced = _reduce_chunk(piece, segment, problems, marks)
-        del piece
+        rows_read += chunk.rows_read
+        seen.update(chunk.serials)
+        first = chunk.first_taken_at if first is None else min(first, chunk.first_taken_at)
+        last = chunk.last_taken_at if last is None else max(last, chunk.last_taken_at)
+        for serial, reason in chunk.problems.items():
+            problems.setdefault(serial, reason)
+        segment, reduced = chunk.segment, chunk.rows
         if segment in segments:
             reduced = _reduce_chunk(pd.concat([segments[segment], reduced], ignore_index=True), segment, problems,
                                     marks)

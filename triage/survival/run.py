@@ -34,21 +34,23 @@ def read_removals(store) -> pd.DataFrame:
 
 
 def load_observations(store, by: Sequence[str] = ("model",), count_proactive: bool = False,
-                      progress: Callable[[int, int], None] | None = None) -> Observations:
-    """The observation table of a store (reads only the columns the survival layer uses)."""
+                      progress: Callable[[int, int], None] | None = None, engine=None) -> Observations:
+    """The observation table of a store (reads only the columns the survival layer uses);
+    ``engine``: where the chunks are read and boiled down (``scan_store``)."""
     store = _store(store)
     _check_not_empty(store)
     removals = read_removals(store)
-    scan = scan_store(store, progress=progress, removals=removals)
+    scan = scan_store(store, progress=progress, removals=removals, engine=engine)
     return observations(scan, removals, by, count_proactive)
 
 
 def cohorts_of_store(store, by: Sequence[str] = ("model",), count_proactive: bool = False,
                      mttf_hours: float | None = None, vs_fleet: bool = False,
-                     progress: Callable[[int, int], None] | None = None) -> tuple[pd.DataFrame, Observations]:
+                     progress: Callable[[int, int], None] | None = None,
+                     engine=None) -> tuple[pd.DataFrame, Observations]:
     """(cohort table, observations) for ``triage cohorts``; ``vs_fleet`` adds each cohort's rate
     ratio against the rest of the fleet (``compare.versus_fleet``)."""
-    obs = load_observations(store, by, count_proactive, progress)
+    obs = load_observations(store, by, count_proactive, progress, engine=engine)
     table = cohort_table(obs, mttf_hours=mttf_hours)
     if vs_fleet:
         table = table.merge(versus_fleet(obs), on="cohort", how="left")
@@ -81,8 +83,14 @@ def survival_reports_of_store(store, cohorts: Sequence[str], by: Sequence[str] =
 
 def fit_store(store, horizon_days: float = 30, by: Sequence[str] = ("model",), count_proactive: bool = False,
               say: Callable[[str], None] | None = None,
-              progress: Callable[[int, int], None] | None = None) -> tuple[FleetRiskModel, Path]:
-    """Fit the fleet risk model on the whole store and save it under ``<store>/models``."""
+              progress: Callable[[int, int], None] | None = None, engine=None) -> tuple[FleetRiskModel, Path]:
+    """Fit the fleet risk model on the whole store and save it under ``<store>/models``.
+
+    ``engine`` (``triage.engine``; None: this process): where the map steps run -- reading and
+    boiling down each week of snapshots for the cohort table, and each stretch between landmarks
+    for the landmark states. The reduced rows come back here in order; the per-cohort and
+    penalised fits run here, and only here is anything written, after every task has returned:
+    an engine that fails mid-fit leaves no model behind."""
     store = _store(store)
     _check_not_empty(store)
     model = FleetRiskModel(horizon_days=horizon_days, by=by, count_proactive=count_proactive)
@@ -90,7 +98,7 @@ def fit_store(store, horizon_days: float = 30, by: Sequence[str] = ("model",), c
     if say:
         say("reading snapshots")
     removals = read_removals(store)
-    scan = scan_store(store, progress=progress, removals=removals)
-    model.fit_history(scan, store_reader(store), removals, progress=say)
+    scan = scan_store(store, progress=progress, removals=removals, engine=engine)
+    model.fit_history(scan, store_reader(store, engine), removals, progress=say)
     path = model.save(store.models_dir)
     return model, path
