@@ -8,7 +8,10 @@ captures; one batch recorded in the manifest), one model is fitted on the 100k x
 copied into the others so that every run scores P(fail). Each measurement runs the command in a
 fresh process (``os.wait4`` gives that process's own peak RSS), three times; the median is shown.
 
-Baselines measured in the same run:
+Each store is ranked two ways: as on-call runs it after the night's commit, when the night's
+ranking was saved by the rank before (nightly, or the first hand run), and computed with no saved
+ranking (the first rank after a commit, or with another rule set). Baselines measured in the
+same run:
 
   * ``old``   -- the same command from the code before the current-state table (``--old REV``,
                  default the commit this work started from), which scans the day partitions;
@@ -84,8 +87,13 @@ def run(argv: list[str], env: dict | None = None) -> tuple[float, float, int, fl
     return wall, peak_kb / 1024, os.waitstatus_to_exitcode(status), usage.ru_utime + usage.ru_stime
 
 
-def measure(argv: list[str], env: dict | None = None, runs: int = RUNS) -> dict:
-    results = [run(argv, env) for _ in range(runs)]
+def measure(argv: list[str], env: dict | None = None, runs: int = RUNS, before=None) -> dict:
+    """Median wall and CPU, highest peak of ``runs`` runs; ``before()`` runs before each."""
+    results = []
+    for _ in range(runs):
+        if before is not None:
+            before()
+        results.append(run(argv, env))
     bad = [r[2] for r in results if r[2] not in (0, 8)]  # 8: the generated fleet's captures are old
     if bad:
         raise SystemExit(f"{' '.join(argv)} exited {bad[0]}")
@@ -99,6 +107,11 @@ ENTRY = "import sys; from triage.cli import main; sys.argv[0] = 'triage'; sys.ex
 
 def rank_argv(python: str, root: Path) -> list[str]:
     return [python, "-c", ENTRY, "rank", "--store", str(root), "--top", "25", "--format", "csv"]
+
+
+def forget_rankings(root: Path) -> None:
+    """Delete the saved rankings (triage/risk/saved.py): the next rank computes its own."""
+    shutil.rmtree(root / "derived", ignore_errors=True)
 
 
 def old_code(rev: str, into: Path) -> dict | None:
@@ -242,10 +255,13 @@ def main() -> None:
             root = work / label.replace(" ", "")
             shutil.rmtree(root / current.CURRENT_DIR, ignore_errors=True)
             rebuild = run(rank_argv(python, root))  # the first rank builds the state from the history
-            figures[label] = new = measure(rank_argv(python, root))
+            figures[label] = new = measure(rank_argv(python, root))  # the night's ranking, saved by the run above
+            computed = measure(rank_argv(python, root), before=lambda: forget_rankings(root))
+            figures[label]["computed"] = computed
             floor = measure([python, "-c", FLOOR, str(root)])
             line = (f"{label:>11}: rank {new['seconds']:.2f} s ({new['cpu']:.2f} s CPU), {new['peak_mb']:.0f} MB | "
-                    f"floor (import + read the "
+                    f"computed (no saved ranking) {computed['seconds']:.2f} s ({computed['cpu']:.2f} s CPU), "
+                    f"{computed['peak_mb']:.0f} MB | floor (import + read the "
                     f"state) {floor['seconds']:.2f} s ({floor['cpu']:.2f} s CPU), {floor['peak_mb']:.0f} MB | first rank, state built from "
                     f"the history: {rebuild[0]:.1f} s, {rebuild[1]:.0f} MB")
             if old_env is not None:
@@ -255,9 +271,12 @@ def main() -> None:
                          f"({old['seconds'] / new['seconds']:.1f}x the time)")
             print(line)
         if args.million:
-            figures["1M x 9"] = big = measure(rank_argv(python, work / "1Mx9"), runs=1)
-            floor = measure([python, "-c", FLOOR, str(work / "1Mx9")], runs=1)
-            print(f"     1M x 9: rank {big['seconds']:.2f} s ({big['cpu']:.2f} s CPU), {big['peak_mb']:.0f} MB | floor "
+            million = work / "1Mx9"
+            computed = measure(rank_argv(python, million), runs=1, before=lambda: forget_rankings(million))
+            figures["1M x 9"] = big = measure(rank_argv(python, million), runs=1)
+            floor = measure([python, "-c", FLOOR, str(million)], runs=1)
+            print(f"     1M x 9: rank {big['seconds']:.2f} s ({big['cpu']:.2f} s CPU), {big['peak_mb']:.0f} MB | computed "
+                  f"{computed['seconds']:.2f} s, {computed['peak_mb']:.0f} MB | floor "
                   f"{floor['seconds']:.2f} s, {floor['peak_mb']:.0f} MB (one run each; state only, no partitions)")
         small, mid, long = figures["10k x 30"], figures["100k x 30"], figures["100k x 180"]
         # the two histories alternately, so that a change in the machine's load hits both alike
@@ -267,6 +286,16 @@ def main() -> None:
         cpu = statistics.median(b[3] for _, b in pairs) / statistics.median(a[3] for a, _ in pairs)
         print(f"history: 180 nights / 30 nights = {long['seconds'] / mid['seconds']:.2f}; alternating 5 pairs: "
               f"{wall:.2f} wall, {cpu:.2f} CPU (target <= 1.2)")
+
+        def computed_pair():
+            for label in ("100k x 30", "100k x 180"):
+                forget_rankings(work / label.replace(" ", ""))
+            return run(rank_argv(python, work / "100kx30")), run(rank_argv(python, work / "100kx180"))
+
+        pairs = [computed_pair() for _ in range(3)]
+        wall = statistics.median(b[0] for _, b in pairs) / statistics.median(a[0] for a, _ in pairs)
+        print(f"computed (no saved ranking): 180 nights / 30 nights = "
+              f"{long['computed']['seconds'] / mid['computed']['seconds']:.2f}; alternating 3 pairs: {wall:.2f} wall")
         growth = f"growth 10k -> 100k drives: {mid['seconds'] / small['seconds']:.1f}x time, " \
                  f"{mid['peak_mb'] / small['peak_mb']:.1f}x memory"
         if args.million:

@@ -73,7 +73,7 @@ def _rank(store, ruleset, config, tickets: Optional[Path], stale_hours: float):
     pa.set_memory_pool(pa.system_memory_pool())
 
     try:
-        result = rank_store(store, ruleset, config=config, tickets=tickets, silent_hours=stale_hours)
+        result = rank_store(store, ruleset, config=config, tickets=tickets, silent_hours=stale_hours, reuse=True)
     except (OSError, ValueError) as exc:  # e.g. --tickets names a file that is not our export
         fail(str(exc), Exit.FAILURE)
     for note in result.notes:

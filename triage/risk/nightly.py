@@ -18,6 +18,7 @@ import json
 import time
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
+from functools import partial
 from pathlib import Path
 from typing import Callable
 
@@ -132,7 +133,7 @@ def run_nightly(
 
     if ingest is None:
         from triage.ingest import ingest_paths as ingest  # noqa: PLC0415
-    rank = rank or rank_store
+    rank = rank or partial(rank_store, reuse=True)  # saved for on-call's 'triage rank' after the run
     report = NightlyReport()
     with store.lock(NIGHTLY_LOCK):
         with store.lock():

@@ -8,7 +8,7 @@ the removal log and the saved model. It never scans the whole history.
 from __future__ import annotations
 
 import fnmatch
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import Callable, Sequence
@@ -38,6 +38,7 @@ from triage.risk.score import (
     tier_index,
 )
 from triage.store.current import RECENT_DAYS, window_start
+from triage.store.models import latest_model_dir
 from triage.store.dataset import EARLIEST_DAY
 
 #: Days of captures looked at to notice a member that went missing (at least this many).
@@ -274,6 +275,7 @@ def rank_store(
     config: GroupConfig | None = None,
     tickets: Path | None = None,
     silent_hours: float = STALE_HOURS,
+    reuse: bool = False,
 ) -> RankResult:
     """Rank every reporting drive in ``store``; list the drives, hosts and sites that went silent.
 
@@ -283,6 +285,9 @@ def rank_store(
     the last ticket export (``tickets``: each flag's state new / ongoing and the day first raised).
     A drive whose newest capture is more than ``silent_hours`` older than the fleet's newest is not
     ranked: it is "not reporting" until it reports again, is removed, or another drive takes its slot.
+
+    ``reuse``: read the ranking saved for the same inputs (triage/risk/saved.py) when there is
+    one, and save the one computed otherwise (with the saved model and the rule engine only).
     """
     from triage.risk.tickets import (  # noqa: PLC0415  (same layer)
         TICKET_COLUMNS,
@@ -291,6 +296,28 @@ def rank_store(
         silent_flags,
     )
 
+    key = token = None
+    result = None
+    if reuse and evaluate is None and model is _AUTO:
+        from triage.risk import saved  # noqa: PLC0415  (same layer; only when asked)
+
+        token = store.state_token()
+        if token is not None:
+            key = saved.ranking_key(token, ruleset, config or GroupConfig(), silent_hours, latest_model_dir(store))
+            result = saved.load_ranking(store.derived_dir, key, RankResult(pd.DataFrame(), pd.DataFrame(), False,
+                                                                           None, None))
+    if result is None:
+        result = _rank_afresh(store, ruleset, evaluate, model, config, silent_hours)
+        if key is not None and store.state_token() == token:  # no commit meanwhile
+            saved.save_ranking(store.derived_dir, key, result)
+    previous = read_tickets(tickets) if tickets is not None else pd.DataFrame(columns=TICKET_COLUMNS)
+    drives = flag_states(result.drives, previous, result.as_of) if tickets is not None else result.drives
+    silent = silent_flags(result.silent, previous)[SILENT_REPORT_COLUMNS]
+    return replace(result, drives=drives, silent=silent)
+
+
+def _rank_afresh(store, ruleset, evaluate, model, config, silent_hours) -> RankResult:
+    """``rank_store`` without ticket states: ``silent`` has SILENT_COLUMNS."""
     notes: list[str] = []
     custom_rules = evaluate is not None
     if evaluate is None:
@@ -312,7 +339,7 @@ def rank_store(
     if state.newest is None:
         empty = pd.DataFrame(columns=RANK_COLUMNS)
         return RankResult(empty, pd.DataFrame(), model is not None, getattr(model, "horizon_days", None), None,
-                          notes + ["the store holds no captures yet"])
+                          notes + ["the store holds no captures yet"], pd.DataFrame(columns=SILENT_COLUMNS))
     if fits:
         recent = state.recent
     else:  # read the partitions
@@ -350,11 +377,7 @@ def rank_store(
     else:
         notes.append("no saved survival model: ranking on rules alone (p_fail is empty)")
     drives, groups = rank_drives(latest, flags, p_fail, horizon_days=horizon, lost=lost, config=config)
-    previous = read_tickets(tickets) if tickets is not None else pd.DataFrame(columns=TICKET_COLUMNS)
-    if tickets is not None:
-        drives = flag_states(drives, previous, as_of)
     summary = not_reporting_summary(silent, sightings, removals)
-    silent = silent_flags(silent, previous)[SILENT_REPORT_COLUMNS]
     return RankResult(drives, groups, model is not None, horizon, as_of, notes, silent, summary, removed,
                       flags=flags, lost=lost)
 

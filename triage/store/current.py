@@ -33,6 +33,7 @@ over the same history; ``tests/store/test_current.py`` checks that on random com
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import secrets
@@ -326,6 +327,27 @@ def load(root: Path, batch: str | None, batches: int, columns: list[str] | None 
         raise
     except (OSError, ValueError, KeyError, TypeError, pa.ArrowException) as exc:
         raise StaleState(f"{path}: unreadable ({type(exc).__name__}: {exc})") from None
+
+
+def token(root: Path, batch: str | None, batches: int, ceiling: datetime) -> str | None:
+    """A digest naming the saved state when ``load`` would accept it for the manifest's
+    ``batch`` / ``batches`` and a reader whose latest readable moment is ``ceiling``; None when it
+    would be rebuilt. Reads ``state.json`` only: results worked out from one state (a ranking)
+    can be kept under this name and trusted while it holds, since every commit and every rebuild
+    writes a new ``state.json`` (new file tags)."""
+    path = Path(root) / CURRENT_DIR / STATE_FILE
+    try:
+        text = path.read_bytes()
+        meta = json.loads(text)
+        if (meta.get("state_version") != STATE_VERSION or meta.get("recent_days") != RECENT_DAYS
+                or meta.get("batch") != batch or meta.get("batches") != batches):
+            return None
+        newest, future = _moment(meta["newest"]), _moment(meta["next_future"])
+    except (OSError, ValueError, KeyError, TypeError, AttributeError):
+        return None
+    if (newest is not None and ceiling < newest) or (future is not None and ceiling >= future):
+        return None  # CurrentState.fits_clock
+    return hashlib.sha256(text).hexdigest()[:32]
 
 
 def _iso(moment: datetime | None) -> str | None:

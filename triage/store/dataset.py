@@ -146,6 +146,12 @@ class Store:
         return self.root / "models"
 
     @property
+    def derived_dir(self) -> Path:
+        """Results worked out from the store and kept to be reused (rankings); never history:
+        deleting the folder loses nothing."""
+        return self.root / "derived"
+
+    @property
     def quarantine_dir(self) -> Path:
         return self.root / "quarantine"
 
@@ -401,6 +407,14 @@ class Store:
             except (StoreLocked, OSError):
                 pass
         return state.narrowed(columns, days_back), f"current state rebuilt from the history ({why})"
+
+    def state_token(self) -> str | None:
+        """A name for the saved current state as a reader would use it now, or None when
+        ``current_state`` would rebuild it (``current.token``): results derived from the state
+        may be kept under this name."""
+        self.upgrade()
+        batch, batches = self._batches()
+        return current.token(self.root, batch, batches, self._sane_window()[1]) if batches else None
 
     def sweep(self) -> int:
         """Delete temporary files and parts of batches the manifest never recorded (a killed

@@ -4,9 +4,9 @@ The fitted ``FleetRiskModel`` is what ``triage rank`` scores drives with; ``late
 loads the newest one saved in a store. See docs/survival.md for the methods and their sources.
 """
 
-from triage.survival.model import FleetRiskModel, ModelFormatError, latest_model, readable_latest_model
+from triage.survival.model import FleetRiskModel, ModelFormatError, latest_model, latest_model_dir, readable_latest_model
 
-__all__ = ["FleetRiskModel", "ModelFormatError", "latest_model", "readable_latest_model"]
+__all__ = ["FleetRiskModel", "ModelFormatError", "latest_model", "latest_model_dir", "readable_latest_model"]
 
 
 def fit_and_save(store, horizon_days: float = 30, by=("model",), count_proactive: bool = False, say=None):

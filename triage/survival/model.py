@@ -38,7 +38,6 @@ from __future__ import annotations
 import json
 import math
 import os
-import re
 import shutil
 from datetime import datetime, timezone
 from pathlib import Path
@@ -48,6 +47,7 @@ import numpy as np
 import pandas as pd
 
 from triage import __version__
+from triage.store.models import MODEL_DIR, latest_model_dir
 from triage.survival.landmark import (
     ACTIVE_DAYS,
     GROWTH_DAYS,
@@ -72,7 +72,6 @@ from triage.survival.observations import (
 
 FORMAT = "triage-fleet-risk"
 FORMAT_VERSION = 4  # 4: landmark Poisson model replaced the stratified Cox baseline
-MODEL_DIR = re.compile(r"^fleet-risk-v(\d+)-(\d{8}T\d{6}Z)$")
 
 
 class ModelFormatError(ValueError):
@@ -430,22 +429,11 @@ def calibration_table(predicted: np.ndarray, failed: np.ndarray, groups: int = 1
 
 
 def latest_model(store) -> FleetRiskModel | None:
-    """The newest saved model of ``store`` (a ``Store``, or a store root path), or None.
-
-    Newest = highest fit number ``N`` in ``fleet-risk-v<N>-<stamp>``. Raises ModelFormatError
-    when that model cannot be read (it does not silently fall back to an older one).
+    """The newest saved model of ``store`` (``latest_model_dir``), or None. Raises
+    ModelFormatError when that model cannot be read (it does not silently fall back to an older one).
     """
-    models_dir = Path(store.models_dir) if hasattr(store, "models_dir") else Path(store) / "models"
-    if not models_dir.is_dir():
-        return None
-    found = []
-    for entry in models_dir.iterdir():
-        match = MODEL_DIR.match(entry.name)
-        if match and entry.is_dir():
-            found.append((int(match.group(1)), match.group(2), entry))
-    if not found:
-        return None
-    return FleetRiskModel.load(max(found)[2])
+    folder = latest_model_dir(store)
+    return FleetRiskModel.load(folder) if folder is not None else None
 
 
 def readable_latest_model(store) -> tuple[FleetRiskModel | None, str | None]:
@@ -467,5 +455,5 @@ def _num(value) -> float | None:
     return None if value is None or (isinstance(value, float) and math.isnan(value)) else float(value)
 
 
-__all__ = ["FleetRiskModel", "latest_model", "calibration_table", "ModelFormatError", "clean_removals", "fit_until",
+__all__ = ["FleetRiskModel", "latest_model", "latest_model_dir", "calibration_table", "ModelFormatError", "clean_removals", "fit_until",
            "event_reasons", "COHORT_COLUMNS", "COVARIATE_SOURCES", "ACTIVE_DAYS", "GROWTH_DAYS"]
