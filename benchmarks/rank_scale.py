@@ -44,7 +44,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from fit import MODELS, START, generate_store, write_day  # noqa: E402  (the benchmark's own generator)
+from fit import MODELS, generate_store, write_day  # noqa: E402  (the benchmark's own generator)
 
 from triage.store import current  # noqa: E402
 from triage.store.schema import REMOVALS, SNAPSHOTS  # noqa: E402

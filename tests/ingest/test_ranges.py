@@ -5,7 +5,6 @@ capture kept when two share a (serial, taken_at)."""
 from __future__ import annotations
 
 import io
-import json
 from datetime import datetime, timezone
 
 import pytest

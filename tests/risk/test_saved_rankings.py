@@ -91,7 +91,7 @@ def test_ticket_states_are_applied_to_the_saved_ranking(store, tmp_path, monkeyp
     assert set(again.drives["state"].dropna()) - {None}  # states were filled in
 
 
-def test_a_new_night_misses(store, fleet):  # noqa: F811
+def test_a_new_night_misses(store):
     ruleset = load_rules([], include_defaults=True)
     before = rank_store(store, ruleset, reuse=True)
     night = store.read("snapshots", since=(pd.Timestamp(before.as_of) - pd.Timedelta(hours=12)).to_pydatetime())

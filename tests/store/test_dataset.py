@@ -144,7 +144,6 @@ def test_a_lock_is_free_again_once_its_holder_is_killed(tmp_path):
     import signal
     import subprocess
     import sys
-    import time
 
     holder = subprocess.Popen([sys.executable, "-c", (
         "import sys, time; from triage.store.dataset import Store\n"
