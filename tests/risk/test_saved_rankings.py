@@ -7,6 +7,7 @@ group configuration or silence threshold, a refit, a new version of the code -- 
 
 from __future__ import annotations
 
+import json
 import os
 import shutil
 import subprocess
@@ -186,3 +187,38 @@ def test_the_rank_command_prints_the_same_from_a_saved_ranking(store):
     assert first.returncode == second.returncode
     assert first.stdout == second.stdout and '"p_fail"' in first.stdout
     assert first.stderr == second.stderr
+
+
+def test_ingest_ranks_ahead_with_the_last_ranks_rules_and_options(tmp_path, monkeypatch):
+    from typer.testing import CliRunner  # noqa: PLC0415
+
+    from tests.ingest.lines import ata_line  # noqa: PLC0415
+    from triage.cli import app  # noqa: PLC0415
+
+    def night(day: int) -> Path:
+        path = tmp_path / f"ash-st01-2026-11-{day:02d}.jsonl"
+        path.write_text("".join(ata_line(serial=f"QHA000000{n}", taken_at=f"2026-11-{day:02d}T02:1{n}:00Z",
+                                         slot=f"bay0{n}") + "\n" for n in range(1, 6)))
+        return path
+
+    runner, root = CliRunner(), tmp_path / "store"
+    rules = tmp_path / "rules"
+    rules.mkdir()
+    (rules / "site.toml").write_text(
+        '[[rule]]\nid = "site.reallocated-any"\ntitle = "Any reallocation"\nseverity = "watch"\n'
+        'category = "media"\nwhen = "reallocated_sectors > 0"\nexplain = "{reallocated_sectors} reallocated"\n'
+        'source = "invented for this test"\n')
+    for day in (1, 2):
+        assert runner.invoke(app, ["ingest", str(night(day)), "--store", str(root)]).exit_code == 0
+    first = runner.invoke(app, ["rank", "--store", str(root), "--rules", str(rules), "--stale-hours", "9000",
+                                "--format", "json"])
+    assert "site.reallocated-any" in first.stdout
+    ingested = runner.invoke(app, ["ingest", str(night(3)), "--store", str(root)])
+    assert ingested.exit_code == 0 and "ahead for 'triage rank'" in ingested.stderr, ingested.stderr
+    store = Store(root)
+    expected = rank_store(store, load_rules([rules], include_defaults=True), silent_hours=9000.0)
+    computing_forbidden(monkeypatch)
+    again = runner.invoke(app, ["rank", "--store", str(root), "--rules", str(rules), "--stale-hours", "9000",
+                                "--format", "json"])
+    shown = [d["serial"] for d in json.loads(again.stdout)["drives"]]
+    assert shown == list(expected.drives["serial"]) and "2026-11-03" in json.loads(again.stdout)["as_of"]

@@ -71,6 +71,12 @@ def ingest(
         f"ingest: {report.files_read} file(s) read, {report.files_skipped} already stored; "
         f"stored {stored}; {len(report.rejected)} line(s) quarantined"
     )
+    if any(report.stored.values()):  # rank ahead for on-call, as the last rank did (when one was ever saved)
+        from triage.cli.risk import refresh_saved_ranking
+
+        line = refresh_saved_ranking(target)
+        if line:
+            say(f"ingest: {line}")
     if report.repeated:
         say(f"ingest: {report.repeated} capture(s) repeated a (serial, taken_at) already read; "
             "the first one read is kept")

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from functools import partial
 from pathlib import Path
 from typing import Optional
 
@@ -61,7 +62,49 @@ def _risk_inputs(rules: Optional[list[Path]], no_default_rules: bool, group_conf
     return ruleset, config
 
 
-def _rank(store, ruleset, config, tickets: Optional[Path], stale_hours: float):
+def _inputs_record(rules: Optional[list[Path]], no_default_rules: bool, group_config: Optional[Path],
+                   stale_hours: float) -> dict:
+    """How this command named its rules and options, saved with its ranking (absolute paths) so
+    that the next ``triage ingest`` can rank again the same way (``refresh_saved_ranking``)."""
+    return {"rules": [str(Path(d).resolve()) for d in rules or []], "default_rules": not no_default_rules,
+            "group_config": str(group_config.resolve()) if group_config is not None else None,
+            "stale_hours": float(stale_hours)}
+
+
+def refresh_saved_ranking(store) -> str | None:
+    """After an ingest that stored something: rank again with the rules and options of the
+    ranking saved last, so that the next ``triage rank`` reads it instead of computing it.
+    Returns a line to print (what was done, or why not), or None when no ranking was ever saved."""
+    import time
+
+    from triage.risk.groups import GroupConfig
+    from triage.risk.rank import rank_store
+    from triage.risk.saved import last_inputs
+    from triage.rules import load_rules
+
+    inputs = last_inputs(store.derived_dir)
+    if inputs is None:
+        return None
+    started = time.perf_counter()
+    try:
+        dirs = [Path(d) for d in inputs["rules"]]
+        missing = [str(d) for d in dirs if not d.is_dir()]
+        if missing:
+            return f"ranking not saved ahead: rule folder {missing[0]} of the last rank is gone"
+        ruleset = load_rules(dirs, include_defaults=bool(inputs["default_rules"]))
+        if ruleset.errors:
+            return f"ranking not saved ahead: rule error: {ruleset.errors[0]}"
+        group_config = Path(inputs["group_config"]) if inputs.get("group_config") else None
+        config = GroupConfig.find(dirs, group_config)
+        result = rank_store(store, ruleset, config=config, silent_hours=float(inputs["stale_hours"]), reuse=True,
+                            inputs=inputs)
+    except (OSError, ValueError, KeyError, TypeError) as exc:
+        return f"ranking not saved ahead: {exc}"
+    return (f"ranked {len(result.drives)} drive(s) ahead for 'triage rank' with the rules and options of the last "
+            f"rank ({time.perf_counter() - started:.1f} s)")
+
+
+def _rank(store, ruleset, config, tickets: Optional[Path], stale_hours: float, inputs: dict | None = None):
     """Rank the store; notes on stderr; returns (result, silence warnings)."""
     import pyarrow as pa
 
@@ -73,7 +116,8 @@ def _rank(store, ruleset, config, tickets: Optional[Path], stale_hours: float):
     pa.set_memory_pool(pa.system_memory_pool())
 
     try:
-        result = rank_store(store, ruleset, config=config, tickets=tickets, silent_hours=stale_hours, reuse=True)
+        result = rank_store(store, ruleset, config=config, tickets=tickets, silent_hours=stale_hours, reuse=True,
+                            inputs=inputs)
     except (OSError, ValueError) as exc:  # e.g. --tickets names a file that is not our export
         fail(str(exc), Exit.FAILURE)
     for note in result.notes:
@@ -108,7 +152,8 @@ def rank(
 
     target = open_store(store)
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
-    result, warnings = _rank(target, ruleset, config, tickets, stale_hours)
+    result, warnings = _rank(target, ruleset, config, tickets, stale_hours,
+                             _inputs_record(rules, no_default_rules, group_config, stale_hours))
     shown = filter_ranked(result.drives, host=host or (), site=site or (), group=group or (),
                           severity=[s.value for s in severity or ()], top=top)
     _print_cautions(result)
@@ -139,7 +184,8 @@ def tickets(
 
     target = open_store(store)
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
-    result, warnings = _rank(target, ruleset, config, None, stale_hours)
+    result, warnings = _rank(target, ruleset, config, None, stale_hours,
+                             _inputs_record(rules, no_default_rules, group_config, stale_hours))
     try:
         _, counts = export_tickets(result.drives, out, previous, as_of=result.as_of, removed=result.removed,
                                    silent=result.silent, min_severity=min_severity.value if min_severity else None)
@@ -177,6 +223,7 @@ def nightly(
     from triage.cli.common import check_output_file
     from triage.cli.export import write_views
     from triage.risk.nightly import run_nightly
+    from triage.risk.rank import rank_store
     from triage.store.dataset import StoreLocked
 
     check_output_file(openmetrics, (), "--openmetrics")
@@ -184,7 +231,9 @@ def nightly(
     target = open_store(store)
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
     try:
+        inputs = _inputs_record(rules, no_default_rules, group_config, stale_hours)
         report = run_nightly(target, dumps, out, ruleset, refit_days=refit_days, config=config,
+                             rank=partial(rank_store, reuse=True, inputs=inputs),
                              log=lambda line: say(line), stale_hours=stale_hours,
                              min_severity=min_severity.value if min_severity else None)
         if summary is not None:

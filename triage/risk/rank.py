@@ -276,6 +276,7 @@ def rank_store(
     tickets: Path | None = None,
     silent_hours: float = STALE_HOURS,
     reuse: bool = False,
+    inputs: dict | None = None,
 ) -> RankResult:
     """Rank every reporting drive in ``store``; list the drives, hosts and sites that went silent.
 
@@ -287,7 +288,8 @@ def rank_store(
     ranked: it is "not reporting" until it reports again, is removed, or another drive takes its slot.
 
     ``reuse``: read the ranking saved for the same inputs (triage/risk/saved.py) when there is
-    one, and save the one computed otherwise (with the saved model and the rule engine only).
+    one, and save the one computed otherwise (with the saved model and the rule engine only),
+    with ``inputs`` (how the command line named the rules and options; ``saved.last_inputs``).
     """
     from triage.risk.tickets import (  # noqa: PLC0415  (same layer)
         TICKET_COLUMNS,
@@ -309,7 +311,7 @@ def rank_store(
     if result is None:
         result = _rank_afresh(store, ruleset, evaluate, model, config, silent_hours)
         if key is not None and store.state_token() == token:  # no commit meanwhile
-            saved.save_ranking(store.derived_dir, key, result)
+            saved.save_ranking(store.derived_dir, key, result, inputs)
     previous = read_tickets(tickets) if tickets is not None else pd.DataFrame(columns=TICKET_COLUMNS)
     drives = flag_states(result.drives, previous, result.as_of) if tickets is not None else result.drives
     silent = silent_flags(result.silent, previous)[SILENT_REPORT_COLUMNS]

@@ -92,10 +92,11 @@ def _rule_text(rule) -> list:
             rule.source, rule.enabled, str(rule.path), rule.line, rule.origin, str(rule.overrides)]
 
 
-def save_ranking(home: Path, key: str, result) -> None:
-    """Keep ``result`` (a RankResult without ticket states) under ``home/rankings/<key>``.
-    Best effort: a store the user cannot write to, a full disk or a concurrent writer of the same
-    key leave things as they were."""
+def save_ranking(home: Path, key: str, result, inputs: dict | None = None) -> None:
+    """Keep ``result`` (a RankResult without ticket states) under ``home/rankings/<key>``, with
+    ``inputs``: how the command line named its rule folders and options, so that the next ingest
+    can rank again the same way (``last_inputs``). Best effort: a store the user cannot write to,
+    a full disk or a concurrent writer of the same key leave things as they were."""
     folder = Path(home) / RANKINGS_DIR
     temp = folder / f".{key}-{secrets.token_hex(4)}.tmp"
     try:
@@ -112,7 +113,7 @@ def save_ranking(home: Path, key: str, result) -> None:
         meta = {"saved_version": SAVED_VERSION, "model_used": bool(result.model_used),
                 "horizon_days": result.horizon_days,
                 "as_of": None if result.as_of is None else pd.Timestamp(result.as_of).isoformat(),
-                "notes": list(result.notes), "kinds": kinds}
+                "notes": list(result.notes), "kinds": kinds, "inputs": inputs}
         (temp / META_FILE).write_text(json.dumps(meta) + "\n", encoding="utf-8")
         fsync_file(temp / META_FILE)
         fsync_dir(temp)
@@ -145,6 +146,21 @@ def load_ranking(home: Path, key: str, empty):
     finally:
         if collecting:
             gc.enable()
+
+
+def last_inputs(home: Path) -> dict | None:
+    """The ``inputs`` saved with the newest ranking, or None (none saved, or saved without)."""
+    folder = Path(home) / RANKINGS_DIR
+    try:
+        saved = sorted((entry for entry in folder.iterdir() if not entry.name.startswith(".")),
+                       key=lambda entry: entry.stat().st_mtime_ns, reverse=True)
+        for entry in saved:
+            inputs = json.loads((entry / META_FILE).read_text(encoding="utf-8")).get("inputs")
+            if isinstance(inputs, dict):
+                return inputs
+    except (OSError, ValueError, AttributeError):
+        return None
+    return None
 
 
 def _to_table(frame: pd.DataFrame) -> tuple[pa.Table, dict]:
