@@ -144,13 +144,22 @@ def closed_port() -> int:
         return probe.getsockname()[1]
 
 
-@pytest.mark.parametrize("command", ["fit", "backtest"])
+def nightly_options(tmp_path: Path) -> list[str]:
+    """A nightly run's own options: an (empty) incoming folder and the ticket file."""
+    (tmp_path / "incoming").mkdir(exist_ok=True)
+    return ["--dumps", str(tmp_path / "incoming"), "--out", str(tmp_path / "tickets.csv")]
+
+
+@pytest.mark.parametrize("command", ["fit", "backtest", "nightly"])
 def test_an_unreachable_scheduler_is_one_line_and_writes_nothing(store_root, tmp_path, monkeypatch, command):
     monkeypatch.setattr("triage.engine.CONNECT_TIMEOUT_S", 2)
     store = fresh_copy(store_root, tmp_path)
     before = sorted(p.relative_to(store.root) for p in store.root.rglob("*"))
     address = f"tcp://127.0.0.1:{closed_port()}"
-    result = runner.invoke(app, [command, "--engine", "dask", "--scheduler", address, "--store", str(store.root)])
+    extra = nightly_options(tmp_path) if command == "nightly" else []
+    result = runner.invoke(app, [command, "--engine", "dask", "--scheduler", address, "--store", str(store.root),
+                                 *extra])
+    assert not (tmp_path / "tickets.csv").exists()
     assert result.exit_code == Exit.FAILURE
     lines = result.stderr.strip().splitlines()
     assert len(lines) == 1 and address in lines[0] and "nothing was written" in lines[0]
@@ -231,3 +240,22 @@ def test_fit_without_an_engine_option_runs_in_its_own_process(store_root, tmp_pa
     result = runner.invoke(app, ["fit", "--format", "json", "--store", str(store.root)])
     assert result.exit_code == Exit.OK, result.output
     assert "fit: map steps on this process" in result.stderr and len(saved_models(store)) == 1
+
+
+def test_nightly_on_the_dask_engine_writes_the_same_tickets_and_model(store_root, tmp_path, cluster):
+    """The nightly run's refit (no model saved yet) and ingest on the cluster, against the same
+    run with no engine option: the same ticket file, a model predicting the same."""
+    out = {}
+    for name, options in (("here", []), ("dask", ["--engine", "dask", "--scheduler", cluster.scheduler_address])):
+        work = tmp_path / name
+        work.mkdir()
+        store = fresh_copy(store_root, work)
+        result = runner.invoke(app, ["nightly", "--store", str(store.root), "--stale-hours", "100000",
+                                     *nightly_options(work), *options])
+        assert result.exit_code in (Exit.OK, Exit.NEW_FLAGS, Exit.USAGE), result.output  # USAGE: the folder is empty
+        (model_dir,) = saved_models(store)
+        out[name] = ((work / "tickets.csv").read_text(), FleetRiskModel.load(model_dir))
+    assert out["here"][0] == out["dask"][0] and out["here"][0].count("\n") > 1
+    latest = Store(store_root).read("snapshots").sort_values("taken_at").groupby("serial").tail(1)
+    pd.testing.assert_series_equal(out["here"][1].predict_fail_probability(latest),
+                                   out["dask"][1].predict_fail_probability(latest))

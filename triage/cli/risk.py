@@ -8,7 +8,23 @@ from typing import Optional
 
 import typer
 
-from triage.cli.common import OutputFormat, StaleOption, StoreOption, Tier, app, fail, format_option, open_store, os_failure, say
+from triage.cli.common import (
+    EngineChoice,
+    EngineOption,
+    OutputFormat,
+    SchedulerOption,
+    StaleOption,
+    StoreOption,
+    Tier,
+    app,
+    fail,
+    format_option,
+    open_engine_options,
+    open_store,
+    os_failure,
+    pool_only_if_asked,
+    say,
+)
 from triage.exitcodes import Exit
 from triage.risk.score import TIERS
 
@@ -215,6 +231,8 @@ def nightly(
     rules: Optional[list[Path]] = RulesOption,
     no_default_rules: bool = NoDefaultRulesOption,
     group_config: Optional[Path] = GroupConfigOption,
+    engine: Optional[EngineChoice] = EngineOption,
+    scheduler: Optional[str] = SchedulerOption,
     store: Optional[Path] = StoreOption,
 ) -> None:
     """Ingest new captures, refit when due, rank, write tickets. Exit (worst outcome): 1 failure,
@@ -228,24 +246,27 @@ def nightly(
 
     check_output_file(openmetrics, (), "--openmetrics")
     check_output_file(html, (".html", ".htm"), "--html")
-    target = open_store(store)
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
-    try:
-        inputs = _inputs_record(rules, no_default_rules, group_config, stale_hours)
-        report = run_nightly(target, dumps, out, ruleset, refit_days=refit_days, config=config,
-                             rank=partial(rank_store, reuse=True, inputs=inputs),
-                             log=lambda line: say(line), stale_hours=stale_hours,
-                             min_severity=min_severity.value if min_severity else None)
-        if summary is not None:
-            report.write_summary(summary)
-    except StoreLocked as exc:
-        fail(f"{exc}; this run did nothing", Exit.LOCKED)
-    except (FileNotFoundError, ValueError) as exc:
-        fail(str(exc), Exit.USAGE)
-    except OSError as exc:  # a full disk, a folder we may not write
-        fail(os_failure(exc), Exit.FAILURE)
-    except Exception as exc:  # cron must see one clear line and FAILURE, not a traceback
-        fail(f"nightly run failed: {type(exc).__name__}: {exc}", Exit.FAILURE)
+    # the engine before the store: a scheduler that cannot be reached stops the run with nothing written
+    with open_engine_options(engine, scheduler) as runner:
+        target = open_store(store)
+        try:
+            inputs = _inputs_record(rules, no_default_rules, group_config, stale_hours)
+            report = run_nightly(target, dumps, out, ruleset, refit_days=refit_days, config=config,
+                                 rank=partial(rank_store, reuse=True, inputs=inputs),
+                                 log=lambda line: say(line), stale_hours=stale_hours,
+                                 min_severity=min_severity.value if min_severity else None,
+                                 ingest_engine=runner, fit_engine=pool_only_if_asked(runner, engine))
+            if summary is not None:
+                report.write_summary(summary)
+        except StoreLocked as exc:
+            fail(f"{exc}; this run did nothing", Exit.LOCKED)
+        except (FileNotFoundError, ValueError) as exc:
+            fail(str(exc), Exit.USAGE)
+        except OSError as exc:  # a full disk, a folder we may not write
+            fail(os_failure(exc), Exit.FAILURE)
+        except Exception as exc:  # cron must see one clear line and FAILURE, not a traceback
+            fail(f"nightly run failed: {type(exc).__name__}: {exc}", Exit.FAILURE)
     try:
         write_views(target, ruleset, config, openmetrics=openmetrics, html=html, ranking=report.result)
     except typer.Exit:

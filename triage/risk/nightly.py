@@ -93,7 +93,7 @@ def model_age_days(store, now: float | None = None) -> float | None:
     return ((now or time.time()) - max(p.stat().st_mtime for p in files)) / 86400.0
 
 
-def refit_like_latest(store, previous=None):
+def refit_like_latest(store, previous=None, engine=None):
     """Refit the survival model with the settings of ``previous`` (default: the newest saved
     model) -- horizon, cohort keys, proactive counting -- so the nightly refit never silently
     replaces a model an operator fitted with other settings; the defaults when there is none
@@ -105,7 +105,7 @@ def refit_like_latest(store, previous=None):
     settings = {} if previous is None else {
         "horizon_days": previous.horizon_days, "by": tuple(previous.by),
         "count_proactive": previous.count_proactive}
-    return survival.fit_and_save(store, **settings)
+    return survival.fit_and_save(store, **settings, engine=engine)
 
 
 def run_nightly(
@@ -123,16 +123,22 @@ def run_nightly(
     stale_hours: float | None = STALE_HOURS,
     now: datetime | None = None,
     min_severity: str | None = None,
+    ingest_engine=None,
+    fit_engine=None,
 ) -> NightlyReport:
     """Hold NIGHTLY_LOCK (raises StoreLocked if held), then ingest, refit when due, rank, export.
 
     ``stale_hours``: a newest capture older than this (against ``now``) and drives silent for
     longer count as not reporting (None: staleness not checked, as in the demo's invented past).
+    ``ingest_engine`` / ``fit_engine``: where the ingest's decoding and the refit's map steps run
+    (triage/engine.py; None: ingest's default local pool, the refit in this process).
     """
     import triage.survival as survival  # noqa: PLC0415  (survival layer, to our left)
 
     if ingest is None:
-        from triage.ingest import ingest_paths as ingest  # noqa: PLC0415
+        from triage.ingest import ingest_paths  # noqa: PLC0415
+
+        ingest = partial(ingest_paths, engine=ingest_engine)
     rank = rank or partial(rank_store, reuse=True)  # saved for on-call's 'triage rank' after the run
     report = NightlyReport()
     with store.lock(NIGHTLY_LOCK):
@@ -145,7 +151,7 @@ def run_nightly(
         previous, _ = survival.readable_latest_model(store)  # None also when it cannot be read
         if previous is None or model_age_days(store) >= refit_days:
             try:
-                refit(store) if refit else refit_like_latest(store, previous)
+                refit(store) if refit else refit_like_latest(store, previous, engine=fit_engine)
                 report.refitted = True
             except ValueError as exc:  # e.g. no failures yet: rank on rules alone, say so
                 report.notes.append(f"refit skipped: {exc}")
