@@ -22,6 +22,7 @@ import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
+from tests.clusters import local_cluster
 from tests.survival.fleetsim import simulated_store
 from triage.cli import app
 from triage.engine import TASK_RETRIES, DaskEngine, EngineError, LocalEngine
@@ -36,14 +37,7 @@ distributed = pytest.importorskip("distributed")
 runner = CliRunner()
 
 
-@pytest.fixture(scope="module")
-def cluster():
-    import dask
-
-    with dask.config.set({"distributed.scheduler.allowed-failures": 1}):
-        with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                      host="127.0.0.1", dashboard_address=None) as local:
-            yield local
+cluster = pytest.fixture(scope="module")(local_cluster)
 
 
 @pytest.fixture

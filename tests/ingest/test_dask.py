@@ -16,6 +16,7 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
+from tests.clusters import local_cluster
 from tests.ingest.lines import ata_line, nvme_line
 from tests.ingest.stores import store_contents
 from triage.cli import app
@@ -31,14 +32,7 @@ NOW = datetime(2026, 11, 2, 12, 0, tzinfo=timezone.utc)
 SAMPLE = Path(__file__).resolve().parents[2] / "sample_data"
 
 
-@pytest.fixture(scope="module")
-def cluster():
-    import dask
-
-    with dask.config.set({"distributed.scheduler.allowed-failures": 1}):
-        with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                      host="127.0.0.1", dashboard_address=None) as local:
-            yield local
+cluster = pytest.fixture(scope="module")(local_cluster)
 
 
 @pytest.fixture
