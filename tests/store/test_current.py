@@ -12,6 +12,7 @@ from datetime import datetime, timedelta, timezone
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pytest
 
 from triage.store import current
@@ -228,3 +229,15 @@ def test_a_state_that_cannot_be_written_never_fails_the_commit(tmp_path):
     assert store.commit({"snapshots": snapshots})["snapshots"] == len(snapshots)
     state, note = store.current_state()
     assert "rebuilt" in note and state.sightings.num_rows == len(SERIALS)
+
+
+def test_utc_days_are_the_calendar_days_of_the_times():
+    """Against Python's own calendar (datetime.date of each UTC time), nulls left out, times
+    before 1970 and at the last microsecond of a day included."""
+    rng = np.random.default_rng(3)
+    micros = rng.integers(-20 * 365 * 86_400 * 10**6, 80 * 365 * 86_400 * 10**6, size=2_000).tolist()
+    micros += [-1, 0, 86_400 * 10**6 - 1, 86_400 * 10**6]
+    moments = [datetime(1970, 1, 1, tzinfo=timezone.utc) + timedelta(microseconds=m) for m in micros]
+    stamps = pa.array([*moments, None], pa.timestamp("us", tz="UTC"))
+    assert current.utc_days(stamps) == sorted({m.date().isoformat() for m in moments})
+    assert current.utc_days(pa.chunked_array([], pa.timestamp("us", tz="UTC"))) == []

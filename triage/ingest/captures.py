@@ -347,10 +347,13 @@ def capture_parts(
     if not paths:
         return
     own = engine is None
-    if own:
-        engine = LocalEngine(max(1, min(workers or os.cpu_count() or 1, len(paths))))
-    try:
+    if own:  # as many processes as there are tasks to share, up to one per CPU (a large file is several)
+        wanted = max(1, workers or os.cpu_count() or 1)
+        tasks = plan_tasks(paths, wanted, now, max_lines)
+        engine = LocalEngine(max(1, min(wanted, len(tasks))))
+    else:
         tasks = plan_tasks(paths, engine.workers, now, max_lines)
+    try:
         numbered: dict[int, int] = {}  # file sequence -> lines numbered by its ranges read so far
         blanks: dict[int, int] = {}
         for task, first in zip(tasks, engine.map(read_task, tasks, ahead=2 * engine.workers)):

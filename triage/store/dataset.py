@@ -365,9 +365,11 @@ class Store:
             try:
                 new = {t: pa.concat_tables(p) if p else None for t, p in parts.items()}
                 snapshots = new.get("snapshots")
-                days = set(pc.strftime(snapshots["taken_at"], format="%Y-%m-%d").unique().to_pylist()) \
-                    if snapshots is not None and snapshots.num_rows else set()
-                state = current.load(self.root, before, batches - 1, only_days=days)  # the days it adds to
+                days = set(current.utc_days(snapshots["taken_at"])) if snapshots is not None else set()
+                if batches == 1:  # the store's first commit: nothing stood before it
+                    state = current.empty_state(ceiling)
+                else:
+                    state = current.load(self.root, before, batches - 1, only_days=days)  # the days it adds to
                 if not state.fits_clock(ceiling):
                     raise current.StaleState("made under another clock")
                 state = current.merge(state, snapshots, new.get("removals"), earliest=earliest, ceiling=ceiling)
