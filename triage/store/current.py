@@ -157,6 +157,16 @@ def _newest_per_serial(rows: pa.Table) -> pa.Table:
     return rows.take(pa.array(last))
 
 
+def _with_sightings(sightings: pa.Table, new: pa.Table) -> pa.Table:
+    """``sightings`` (one row per serial) with the newest of ``new`` taken in: only the serials
+    ``new`` names are compared, so the fleet's other sightings are copied once, never sorted
+    (their order is of no meaning; readers look serials up)."""
+    new = _newest_per_serial(new)
+    seen = pc.is_in(sightings["serial"], value_set=new["serial"].combine_chunks())
+    both = _newest_per_serial(pa.concat_tables([sightings.filter(seen), new]))
+    return pa.concat_tables([sightings.filter(pc.invert(seen)), both]).combine_chunks()
+
+
 def _min_time(*moments: datetime | None) -> datetime | None:
     known = [m for m in moments if m is not None]
     return min(known) if known else None
@@ -179,7 +189,7 @@ def merge(state: CurrentState, snapshots: pa.Table | None, removals: pa.Table | 
         recent = recent.filter(pc.greater_equal(recent["taken_at"], pa.scalar(recent_floor(newest), TIMESTAMP)))
     sightings = state.sightings
     if new_rows.num_rows:
-        sightings = _newest_per_serial(pa.concat_tables([sightings, new_rows.select(SIGHTING_COLUMNS)]))
+        sightings = _with_sightings(sightings, new_rows.select(SIGHTING_COLUMNS))
     touched = {"sightings"} if new_rows.num_rows else set()
     if new_removals.num_rows:
         touched.add("removals")
@@ -245,8 +255,10 @@ def save(root: Path, state: CurrentState) -> None:
     """Write ``state`` under ``root/current`` atomically (module docstring); old files go last.
 
     The recent window is one file per UTC day, rows in time order: a commit rewrites the days it
-    added rows to, keeps the files of the others (``kept_days``) and drops the days the window
-    left; sightings and removals are rewritten only when they changed (``unchanged``)."""
+    added rows to (a day in ``kept_days`` that ``state.recent`` has rows for is its file's rows
+    and those, read and written one day at a time), keeps the files of the others and drops the
+    days the window left; sightings and removals are rewritten only when they changed
+    (``unchanged``)."""
     folder = Path(root) / CURRENT_DIR
     folder.mkdir(parents=True, exist_ok=True)
     tag = f"{state.batches}-{secrets.token_hex(4)}"
@@ -261,6 +273,8 @@ def save(root: Path, state: CurrentState) -> None:
             end = pa.scalar(datetime.fromisoformat(day).replace(tzinfo=timezone.utc) + timedelta(days=1), TIMESTAMP)
             rows = recent if len(recent_days) == 1 else recent.filter(
                 pc.and_(pc.greater_equal(stamps, start), pc.less(stamps, end)))
+            if day in days:  # a kept day this state adds rows to: its file's rows join them, one day at a time
+                rows = pa.concat_tables([pq.read_table(folder / days[day], schema=SNAPSHOTS), rows])
             rows = rows.take(pc.sort_indices(rows, sort_keys=[("taken_at", "ascending"), ("serial", "ascending")]))
             days[day] = _write(folder, f"recent-{day}-{tag}.parquet", rows)
     names = {"recent": dict(sorted(days.items()))}

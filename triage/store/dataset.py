@@ -365,11 +365,10 @@ class Store:
             try:
                 new = {t: pa.concat_tables(p) if p else None for t, p in parts.items()}
                 snapshots = new.get("snapshots")
-                days = set(current.utc_days(snapshots["taken_at"])) if snapshots is not None else set()
                 if batches == 1:  # the store's first commit: nothing stood before it
                     state = current.empty_state(ceiling)
-                else:
-                    state = current.load(self.root, before, batches - 1, only_days=days)  # the days it adds to
+                else:  # no day's rows in memory: save joins each day the commit adds to with its file
+                    state = current.load(self.root, before, batches - 1, only_days=set())
                 if not state.fits_clock(ceiling):
                     raise current.StaleState("made under another clock")
                 state = current.merge(state, snapshots, new.get("removals"), earliest=earliest, ceiling=ceiling)
