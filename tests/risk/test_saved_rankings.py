@@ -7,6 +7,7 @@ group configuration or silence threshold, a refit, a new version of the code -- 
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 import shutil
@@ -222,3 +223,15 @@ def test_ingest_ranks_ahead_with_the_last_ranks_rules_and_options(tmp_path, monk
                                 "--format", "json"])
     shown = [d["serial"] for d in json.loads(again.stdout)["drives"]]
     assert shown == list(expected.drives["serial"]) and "2026-11-03" in json.loads(again.stdout)["as_of"]
+
+
+def test_a_ranking_arrow_cannot_hold_is_not_kept_and_the_rank_still_answers(store, monkeypatch):
+    ruleset = load_rules([], include_defaults=True)
+    fresh = rank_store(store, ruleset)
+    odd = fresh.drives.copy()
+    odd["state"] = [object()] * len(odd)  # no Arrow type for it
+    monkeypatch.setattr(rank_module, "_rank_afresh", lambda *args: dataclasses.replace(fresh, drives=odd))
+    got = rank_store(store, ruleset, reuse=True)
+    assert got.drives["state"].iloc[0] is odd["state"].iloc[0]
+    assert saved_keys(store) == []
+    assert not any((store.derived_dir / saved.RANKINGS_DIR).glob(".*"))  # no half-written folder left

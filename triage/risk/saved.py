@@ -119,7 +119,7 @@ def save_ranking(home: Path, key: str, result, inputs: dict | None = None) -> No
         fsync_dir(temp)
         os.rename(temp, folder / key)
         fsync_dir(folder)
-    except OSError:
+    except (OSError, ValueError, TypeError, pa.ArrowException):  # a value Arrow cannot hold: not kept
         shutil.rmtree(temp, ignore_errors=True)
         return
     _prune(folder)
