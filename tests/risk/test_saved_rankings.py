@@ -235,3 +235,26 @@ def test_a_ranking_arrow_cannot_hold_is_not_kept_and_the_rank_still_answers(stor
     assert got.drives["state"].iloc[0] is odd["state"].iloc[0]
     assert saved_keys(store) == []
     assert not any((store.derived_dir / saved.RANKINGS_DIR).glob(".*"))  # no half-written folder left
+
+
+def test_ranking_ahead_that_fails_leaves_the_ingest_standing(tmp_path, monkeypatch):
+    from typer.testing import CliRunner  # noqa: PLC0415
+
+    from tests.ingest.lines import ata_line  # noqa: PLC0415
+    from triage.cli import app  # noqa: PLC0415
+
+    runner, root = CliRunner(), tmp_path / "store"
+    for day in (1, 2):
+        night = tmp_path / f"n{day}.jsonl"
+        night.write_text(ata_line(serial="QHA0000009", taken_at=f"2026-11-0{day}T02:10:00Z") + "\n")
+        if day == 2:
+            def broken(*args, **kwargs):
+                raise RuntimeError("out of luck")
+
+            monkeypatch.setattr(rank_module, "rank_store", broken)
+        result = runner.invoke(app, ["ingest", str(night), "--store", str(root)])
+        assert result.exit_code == 0, result.output
+        if day == 1:
+            assert runner.invoke(app, ["rank", "--store", str(root), "--stale-hours", "9000"]).exit_code == 0
+    assert "ranking not saved ahead: RuntimeError: out of luck" in result.stderr
+    assert len(Store(root).read("snapshots")) == 2  # the night is stored all the same

@@ -37,7 +37,9 @@ def ingest(
     scheduler: Optional[str] = SchedulerOption,
 ) -> None:
     """Store capture files and removal logs; bad lines go to quarantine with a reason. Files are
-    decoded on this machine's cores or on a Dask cluster; only this process writes the store."""
+    decoded on this machine's cores or on a Dask cluster; only this process writes the store.
+    In a store ranked before, then ranks ahead with the last ranking's rules and options, so that
+    the next 'triage rank' reads the result instead of computing it."""
     from triage.engine import EngineError
     from triage.ingest import ingest_paths
     from triage.ingest.captures import InputNotVisible

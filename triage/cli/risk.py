@@ -114,8 +114,8 @@ def refresh_saved_ranking(store) -> str | None:
         config = GroupConfig.find(dirs, group_config)
         result = rank_store(store, ruleset, config=config, silent_hours=float(inputs["stale_hours"]), reuse=True,
                             inputs=inputs)
-    except (OSError, ValueError, KeyError, TypeError) as exc:
-        return f"ranking not saved ahead: {exc}"
+    except Exception as exc:  # noqa: BLE001  (best effort: the ingest before it stands, whatever this meets)
+        return f"ranking not saved ahead: {type(exc).__name__}: {exc}"
     return (f"ranked {len(result.drives)} drive(s) ahead for 'triage rank' with the rules and options of the last "
             f"rank ({time.perf_counter() - started:.1f} s)")
 
