@@ -217,7 +217,9 @@ def _lists(array: pa.ListArray) -> np.ndarray:
     cut at the offsets, far quicker than a per-row conversion on 100,000 mostly empty lists."""
     flat = _python_values(array.values)
     offsets = array.offsets.to_numpy()
-    rows = [flat[start:end] for start, end in zip(offsets[:-1].tolist(), offsets[1:].tolist())]
+    rows = [[] for _ in range(len(array))]  # a list of its own for every row, most of them empty
+    for i in np.flatnonzero(np.diff(offsets)).tolist():
+        rows[i] = flat[offsets[i]:offsets[i + 1]]
     if array.null_count:
         for i in np.flatnonzero(array.is_null().to_numpy(zero_copy_only=False)).tolist():
             rows[i] = None
