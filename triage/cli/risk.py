@@ -58,24 +58,29 @@ MinSeverityOption = typer.Option(
          "open tickets stay open while flagged.")
 
 
-def _risk_inputs(rules: Optional[list[Path]], no_default_rules: bool, group_config: Optional[Path]):
-    """Load the rule set and group configuration, or fail with one clear line."""
+def _load_risk_inputs(dirs: list[Path], include_defaults: bool, group_config: Optional[Path]):
+    """(rule set, group configuration); ValueError with one line when either cannot be used."""
     from triage.risk.groups import GroupConfig
+    from triage.rules import load_rules
 
-    try:
-        from triage.rules import load_rules
-    except ImportError as exc:
-        fail(f"the rules layer is not available: {exc}", Exit.FAILURE)
-    dirs = list(rules or [])
-    ruleset = load_rules(dirs, include_defaults=not no_default_rules)
+    ruleset = load_rules(dirs, include_defaults=include_defaults)
     errors = list(getattr(ruleset, "errors", []) or [])
     if errors:
-        fail(f"rule error: {errors[0]}" + (f" (and {len(errors) - 1} more)" if len(errors) > 1 else ""), Exit.USAGE)
+        raise ValueError(f"rule error: {errors[0]}" + (f" (and {len(errors) - 1} more)" if len(errors) > 1 else ""))
     try:
-        config = GroupConfig.find(dirs, group_config)
-    except (OSError, ValueError) as exc:
+        return ruleset, GroupConfig.find(dirs, group_config)
+    except OSError as exc:
+        raise ValueError(str(exc)) from exc
+
+
+def _risk_inputs(rules: Optional[list[Path]], no_default_rules: bool, group_config: Optional[Path]):
+    """Load the rule set and group configuration, or fail with one clear line."""
+    try:
+        return _load_risk_inputs(list(rules or []), not no_default_rules, group_config)
+    except ImportError as exc:
+        fail(f"the rules layer is not available: {exc}", Exit.FAILURE)
+    except ValueError as exc:
         fail(str(exc), Exit.USAGE)
-    return ruleset, config
 
 
 def _inputs_record(rules: Optional[list[Path]], no_default_rules: bool, group_config: Optional[Path],
@@ -93,25 +98,17 @@ def refresh_saved_ranking(store) -> str | None:
     Returns a line to print (what was done, or why not), or None when no ranking was ever saved."""
     import time
 
-    from triage.risk.groups import GroupConfig
     from triage.risk.rank import rank_store
     from triage.risk.saved import last_inputs
-    from triage.rules import load_rules
 
     inputs = last_inputs(store.derived_dir)
     if inputs is None:
         return None
     started = time.perf_counter()
     try:
-        dirs = [Path(d) for d in inputs["rules"]]
-        missing = [str(d) for d in dirs if not d.is_dir()]
-        if missing:
-            return f"ranking not saved ahead: rule folder {missing[0]} of the last rank is gone"
-        ruleset = load_rules(dirs, include_defaults=bool(inputs["default_rules"]))
-        if ruleset.errors:
-            return f"ranking not saved ahead: rule error: {ruleset.errors[0]}"
         group_config = Path(inputs["group_config"]) if inputs.get("group_config") else None
-        config = GroupConfig.find(dirs, group_config)
+        ruleset, config = _load_risk_inputs([Path(d) for d in inputs["rules"]], bool(inputs["default_rules"]),
+                                            group_config)  # a rule folder gone or broken since: one line
         result = rank_store(store, ruleset, config=config, silent_hours=float(inputs["stale_hours"]), reuse=True,
                             inputs=inputs)
     except Exception as exc:  # noqa: BLE001  (best effort: the ingest before it stands, whatever this meets)

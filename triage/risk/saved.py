@@ -150,11 +150,8 @@ def load_ranking(home: Path, key: str, empty):
 
 def last_inputs(home: Path) -> dict | None:
     """The ``inputs`` saved with the newest ranking, or None (none saved, or saved without)."""
-    folder = Path(home) / RANKINGS_DIR
     try:
-        saved = sorted((entry for entry in folder.iterdir() if not entry.name.startswith(".")),
-                       key=lambda entry: entry.stat().st_mtime_ns, reverse=True)
-        for entry in saved:
+        for entry in _newest_first(Path(home) / RANKINGS_DIR):
             inputs = json.loads((entry / META_FILE).read_text(encoding="utf-8")).get("inputs")
             if isinstance(inputs, dict):
                 return inputs
@@ -226,11 +223,16 @@ def _lists(array: pa.ListArray) -> np.ndarray:
     return _objects(rows)
 
 
+def _newest_first(folder: Path) -> list[Path]:
+    """The saved rankings, newest written first (not the dot-folders being written)."""
+    return sorted((entry for entry in folder.iterdir() if not entry.name.startswith(".")),
+                  key=lambda entry: entry.stat().st_mtime_ns, reverse=True)
+
+
 def _prune(folder: Path) -> None:
     """Keep the ``KEEP`` newest rankings (and any other process's dot-folder in progress)."""
     try:
-        saved = sorted((entry for entry in folder.iterdir() if not entry.name.startswith(".")),
-                       key=lambda entry: entry.stat().st_mtime_ns, reverse=True)
+        saved = _newest_first(folder)
     except OSError:
         return
     for entry in saved[KEEP:]:
