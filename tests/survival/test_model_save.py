@@ -27,6 +27,27 @@ def test_saves_at_the_same_moment_get_distinct_numbers_and_all_load(fitted, tmp_
     assert not list(tmp_path.glob(".*"))  # no temporary folder left
 
 
+def test_saves_straddling_a_clock_second_still_get_distinct_numbers(fitted, tmp_path, monkeypatch):
+    # The stamp is part of the folder name, so two saves reading different seconds once both took
+    # the same v<N> under different names. A clock that ticks at every reading forces that case.
+    import itertools
+    from datetime import datetime, timedelta, timezone
+
+    import triage.survival.model as model_module
+
+    ticks = itertools.count()
+
+    class TickingClock(datetime):
+        @classmethod
+        def now(cls, tz=None):
+            return datetime(2026, 1, 1, tzinfo=timezone.utc) + timedelta(seconds=next(ticks))
+
+    monkeypatch.setattr(model_module, "datetime", TickingClock)
+    with ThreadPoolExecutor(max_workers=8) as pool:
+        paths = list(pool.map(lambda _: fitted.save(tmp_path), range(16)))
+    assert sorted(int(p.name.split("-")[2][1:]) for p in paths) == list(range(1, 17))
+
+
 def test_a_killed_fits_temporary_folder_is_removed_at_the_next_save(fitted, tmp_path):
     # pid 2**22 + 1 is above Linux's pid_max ceiling (4194304, proc(5)): no such process.
     stale = tmp_path / f".fleet-risk-dead.{2**22 + 1}.beef.tmp"

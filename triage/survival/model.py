@@ -291,11 +291,10 @@ class FleetRiskModel:
 
         Unique and atomic, so two fits at once never collide: the files go to a temporary folder
         named for this process and a random token, which is then renamed to the next free
-        ``v<N>``. rename(2) refuses a target folder that already holds files, so when another
-        fit took that number first this one takes the next. Temporary folders of fits that were
-        killed (their process is gone) are removed here.
+        ``v<N>`` under a lock on the folder, so two fits never share a number. Temporary folders
+        of fits that were killed (their process is gone) are removed here.
         """
-        import errno  # noqa: PLC0415  (kept local: only this method changes in this module)
+        import fcntl  # noqa: PLC0415  (kept local: only this method changes in this module)
         import secrets  # noqa: PLC0415
 
         from triage.process import process_gone  # noqa: PLC0415
@@ -329,16 +328,18 @@ class FleetRiskModel:
             for written in temp.iterdir():  # on disk before the rename makes the model visible
                 with written.open("rb") as fh:
                     os.fsync(fh.fileno())
-            while True:
+            # Numbering is serialised by flock(2) on the folder itself: two saves whose clock
+            # seconds differ would otherwise both take v<N> under different folder names. flock
+            # belongs to the open file, so it also keeps apart threads of one process.
+            numbering = os.open(models_dir, os.O_RDONLY | os.O_DIRECTORY | os.O_CLOEXEC)
+            try:
+                fcntl.flock(numbering, fcntl.LOCK_EX)
                 taken = (int(m.group(1)) for m in map(MODEL_DIR.match, os.listdir(models_dir)) if m)
                 stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
                 final = models_dir / f"fleet-risk-v{1 + max(taken, default=0)}-{stamp}"
-                try:
-                    os.rename(temp, final)
-                    break
-                except OSError as exc:
-                    if exc.errno not in (errno.ENOTEMPTY, errno.EEXIST):
-                        raise  # a full disk or a permission: the caller says it in one line
+                os.rename(temp, final)
+            finally:
+                os.close(numbering)  # closing releases the lock
         except BaseException:
             shutil.rmtree(temp, ignore_errors=True)
             raise
