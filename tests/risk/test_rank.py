@@ -9,7 +9,8 @@ import pandas as pd
 import pytest
 
 from triage.risk.groups import GroupConfig
-from triage.risk.rank import filter_ranked, rank_drives, site_of
+from triage.risk.rank import filter_ranked, rank_drives
+from triage.risk.view import site_of
 from triage.risk.score import risk_score
 
 

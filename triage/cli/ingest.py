@@ -181,6 +181,7 @@ def demo(
     from triage.report.rank import render_ranked
     from triage.risk.nightly import run_nightly
     from triage.risk.rank import filter_ranked
+    from triage.risk.view import view_of
     from triage.store.dataset import Store
 
     spec = FleetSpec(seed=seed, n_drives=drives, days=days)
@@ -202,8 +203,9 @@ def demo(
             log=lambda line: say(f"demo: {line}"), stale_hours=None)
     say(report.summary())
     result = report.result
-    _print_cautions(result)
-    render_ranked(result, filter_ranked(result.drives, flagged_only=True, top=top), fmt, report.silence)
+    view = view_of(result, filter_ranked(result.drives, flagged_only=True, top=top))
+    _print_cautions(view)
+    render_ranked(view, fmt, report.silence)
     say(f"demo: tickets in {folder.tickets}; explore with: triage cohorts --store {folder.store}, "
                f"triage survival <cohort> --store {folder.store}, triage rank --store {folder.store}")
     if report.rejected:

@@ -55,7 +55,7 @@ def _survival_call(function, *args, **kwargs):
 def _survival_notes(obs, as_of=None, command: str = "", stale_hours: float | None = None) -> None:
     """The as-of line, a stale-data warning, data-quality exclusions and drives back from repair, on stderr."""
     from triage.report.survival import exclusion_lines, return_lines
-    from triage.risk.rank import stale_warning
+    from triage.risk.view import stale_warning
     from triage.risk.score import moment_text
 
     if command:

@@ -19,7 +19,7 @@ from rich.table import Table
 from triage.report.console import stdout_console
 from triage.report.safe import for_terminal as t
 from triage.report.pictures import chart_text
-from triage.risk.rank import stale_warning
+from triage.risk.view import stale_warning
 
 #: Eight heights, lowest first (Unicode "Block Elements" U+2581..U+2588).
 SPARK_GLYPHS = "\u2581\u2582\u2583\u2584\u2585\u2586\u2587\u2588"

@@ -17,7 +17,7 @@ import pandas as pd
 from triage.report.drive import history_figure
 from triage.report.pictures import figure_bytes, hazard_figure, survival_figure
 from triage.report.safe import for_html as h
-from triage.risk.rank import stale_warning
+from triage.risk.view import stale_warning
 from triage.risk.score import DEGRADED_CAUTION
 
 #: Cohorts next to the whole fleet on the hazard-by-age chart.

@@ -31,7 +31,7 @@ import numpy as np
 import pandas as pd
 from scipy.signal import fftconvolve
 
-from triage.risk.rank import site_of
+from triage.risk.view import site_of
 
 FORECAST_COLUMNS = ("scope", "name", "drives", "expected", "interval_low", "interval_high", "spares")
 INTERVAL = (0.05, 0.95)

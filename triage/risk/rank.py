@@ -7,9 +7,8 @@ the removal log and the saved model. It never scans the whole history.
 
 from __future__ import annotations
 
-import fnmatch
 from dataclasses import dataclass, field, replace
-from datetime import datetime, timedelta, timezone
+from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Callable, Sequence
 
@@ -27,26 +26,20 @@ from triage.risk.groups import (
     member_probabilities,
 )
 from triage.risk.score import (
-    SEVERITIES,
     SEVERITY_WEIGHT,
     action_text,
     degraded_caution,
     drive_actions,
-    moment_text,
     risk_scores,
     severity_name,
     tier_index,
 )
+from triage.risk.view import STALE_HOURS, kept_rows, silence_lines, site_of
 from triage.store.current import RECENT_DAYS, window_start
-from triage.store.models import latest_model_dir
 from triage.store.dataset import EARLIEST_DAY
 
 #: Days of captures looked at to notice a member that went missing (at least this many).
 GROUP_LOOKBACK_DAYS = 7
-#: A report whose newest capture is older than this warns; a drive, host or site whose newest
-#: capture is this much older than the fleet's newest is "not reporting". Common practice, no
-#: source: a nightly capture plus a missed night's slack.
-STALE_HOURS = 36.0
 
 RANK_COLUMNS = [
     "rank", "serial", "model", "host", "slot", "group", "power_on_hours", "age_days", "severity",
@@ -221,15 +214,6 @@ def _first_in_degraded_group(drives: pd.DataFrame, groups: pd.DataFrame) -> tupl
     return positions, notes
 
 
-def site_of(host: str | None) -> str | None:
-    """A host's site: its name up to the first '-' or '.' (fleet naming like ``ash-r3-n07``)."""
-    if not isinstance(host, str):
-        return None
-    for sep in ("-", "."):
-        host = host.split(sep, 1)[0]
-    return host
-
-
 def filter_ranked(
     drives: pd.DataFrame,
     *,
@@ -240,27 +224,12 @@ def filter_ranked(
     flagged_only: bool = False,
     top: int | None = None,
 ) -> pd.DataFrame:
-    """Keep drives matching every given filter (fnmatch patterns; any pattern of a list may match)."""
-
-    def matches(values: pd.Series, patterns: Sequence[str]) -> pd.Series:
-        return values.map(lambda v: isinstance(v, str) and any(fnmatch.fnmatchcase(v, p) for p in patterns))
-
-    keep = pd.Series(True, index=drives.index)
-    if host:
-        keep &= matches(drives["host"], host)
-    if site:
-        keep &= matches(drives["host"].map(site_of), site)
-    if group:
-        keep &= matches(drives["group"], group)
-    if severity:
-        unknown = set(severity) - set(SEVERITIES)
-        if unknown:
-            raise ValueError(f"unknown severity {', '.join(sorted(unknown))}; use one of {', '.join(SEVERITIES)}")
-        keep &= drives["severity"].isin(list(severity))
-    if flagged_only:
-        keep &= drives["rules"].map(len) > 0
-    out = drives[keep]
-    return out.head(top) if top is not None else out
+    """Keep drives matching every given filter (``view.kept_rows``: fnmatch patterns, any pattern
+    of a list may match)."""
+    kept = kept_rows(drives["host"].tolist(), drives["group"].tolist(), drives["severity"].tolist(),
+                     [len(r) for r in drives["rules"]] if flagged_only else [], host=host, site=site, group=group,
+                     severity=severity, flagged_only=flagged_only, top=top)
+    return drives.iloc[kept]
 
 
 _AUTO = object()
@@ -305,7 +274,7 @@ def rank_store(
 
         token = store.state_token()
         if token is not None:
-            key = saved.ranking_key(token, ruleset, config or GroupConfig(), silent_hours, latest_model_dir(store))
+            key = saved.key_of(store, token, ruleset, config, silent_hours)
             result = saved.load_ranking(store.derived_dir, key, RankResult(pd.DataFrame(), pd.DataFrame(), False,
                                                                            None, None))
     if result is None:
@@ -495,39 +464,10 @@ def not_reporting_summary(silent: pd.DataFrame, sightings: pd.DataFrame, removal
     return pd.DataFrame(rows, columns=NOT_REPORTING_COLUMNS)
 
 
-def data_age_hours(as_of: datetime | None, now: datetime | None = None) -> float | None:
-    """Hours between the newest capture and ``now``; None when there is no capture at all."""
-    if as_of is None:
-        return None
-    now = now or datetime.now(timezone.utc)
-    return (pd.Timestamp(now) - pd.Timestamp(as_of)).total_seconds() / 3600.0
-
-
-def stale_warning(as_of: datetime | None, *, now: datetime | None = None,
-                  stale_hours: float | None = STALE_HOURS) -> str | None:
-    """A warning when the newest capture is older than ``stale_hours`` (None: not checked)."""
-    age = data_age_hours(as_of, now)
-    if stale_hours is None or age is None or age <= stale_hours:
-        return None
-    return (f"the newest capture is {age:.0f} h old (as of {moment_text(as_of)}; limit {stale_hours:g} h): "
-            "captures may have stopped arriving")
-
-
 def silence_warnings(result: RankResult, *, now: datetime | None = None,
                      stale_hours: float | None = STALE_HOURS) -> list[str]:
-    """What the report cannot see: no capture at all, a newest capture older than ``stale_hours``
-    (None: not checked), and each site, host or drive not reporting. Empty when all is heard;
-    otherwise the run's exit code is Exit.NOT_REPORTING."""
-    if result.as_of is None:
-        return ["no capture in the store at all: nothing is reporting"]
-    stale = stale_warning(result.as_of, now=now, stale_hours=stale_hours)
-    lines = [stale] if stale else []
-    for row in result.not_reporting.itertuples(index=False):
-        size = (f"{row.hosts} host(s), {row.drives} drive(s)" if row.scope == "site"
-                else f"{row.drives} drive(s)" if row.scope == "host" else "")
-        lines.append(f"not reporting: {row.scope} {row.name}" + (f" ({size})" if size else "")
-                     + f", last seen {moment_text(row.last_seen)}")
-    return lines
+    """``view.silence_lines`` of a computed ranking."""
+    return silence_lines(result.as_of, result.not_reporting.to_dict("records"), now=now, stale_hours=stale_hours)
 
 
 def _latest_model(store, notes: list[str]):

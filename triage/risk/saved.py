@@ -16,6 +16,10 @@ Layout, under ``<store>/derived/rankings/`` (derived results: deleting the folde
 A ranking is written into a dot-folder and renamed into place, so a reader finds a whole one or
 none; the newest ``KEEP`` are kept. Any trouble reading one (a half-deleted folder, a file from
 another version) is a miss, never an error: the ranking is computed instead.
+
+``load_view`` reads only what a report shows (the filtered top rows, the degraded groups, the
+drives not reporting) straight from Arrow, and this module imports pandas only to rebuild whole
+frames (``load_ranking``) or to save them: ``triage rank`` on a saved ranking never imports it.
 """
 
 from __future__ import annotations
@@ -27,15 +31,21 @@ import os
 import secrets
 import shutil
 from dataclasses import replace
-from datetime import datetime
+from datetime import datetime, timedelta, timezone
 from pathlib import Path
+from typing import TYPE_CHECKING, Sequence
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from triage.risk.group_config import GroupConfig
+from triage.risk.view import RankView, kept_rows
 from triage.store.files import fsync_dir, fsync_file
+from triage.store.models import latest_model_dir
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 RANKINGS_DIR = "rankings"
 META_FILE = "meta.json"
@@ -43,8 +53,16 @@ META_FILE = "meta.json"
 SAVED_VERSION = 1
 #: Saved rankings kept (different rule sets or thresholds on the same night, and the night before).
 KEEP = 4
+#: Rows per Parquet row group: a report of the top drives decodes the first group only.
+ROW_GROUP_ROWS = 4096
 #: The frames of a RankResult saved, in file order.
 FRAMES = ("drives", "groups", "silent", "not_reporting", "flags", "lost")
+
+
+def key_of(store, state_token: str, ruleset, config: GroupConfig | None, silent_hours: float) -> str:
+    """``ranking_key`` of ``store`` as it is now (its newest saved model), ``state_token`` being
+    ``store.state_token()``; ``config`` None is the default group configuration."""
+    return ranking_key(state_token, ruleset, config or GroupConfig(), silent_hours, latest_model_dir(store))
 
 
 def ranking_key(state_token: str, ruleset, config, silent_hours: float, model_dir: Path | None) -> str:
@@ -105,18 +123,22 @@ def save_ranking(home: Path, key: str, result, inputs: dict | None = None) -> No
         for name in FRAMES:
             frame = getattr(result, name)
             table, kinds[name] = _to_table(frame)
-            pq.write_table(table, temp / f"{name}.parquet", compression="lz4")
+            pq.write_table(table, temp / f"{name}.parquet", compression="lz4", row_group_size=ROW_GROUP_ROWS)
             fsync_file(temp / f"{name}.parquet")
         removed = pa.table({"serial": pa.array(sorted(result.removed), pa.string())})
         pq.write_table(removed, temp / "removed.parquet")
         fsync_file(temp / "removed.parquet")
         meta = {"saved_version": SAVED_VERSION, "model_used": bool(result.model_used),
                 "horizon_days": result.horizon_days,
-                "as_of": None if result.as_of is None else pd.Timestamp(result.as_of).isoformat(),
+                "as_of": None if result.as_of is None else result.as_of.isoformat(),
                 "notes": list(result.notes), "kinds": kinds, "inputs": inputs}
         (temp / META_FILE).write_text(json.dumps(meta) + "\n", encoding="utf-8")
         fsync_file(temp / META_FILE)
         fsync_dir(temp)
+        if (folder / key).exists():  # one that could not be read (hence computed again): set aside first
+            aside = folder / f".{key}-{secrets.token_hex(4)}.old"
+            os.rename(folder / key, aside)
+            shutil.rmtree(aside, ignore_errors=True)
         os.rename(temp, folder / key)
         fsync_dir(folder)
     except (OSError, ValueError, TypeError, pa.ArrowException):  # a value Arrow cannot hold: not kept
@@ -148,6 +170,107 @@ def load_ranking(home: Path, key: str, empty):
             gc.enable()
 
 
+def saved_view(store, ruleset, config: GroupConfig | None, silent_hours: float, **shown) -> RankView | None:
+    """What the report shows of the ranking saved for ``store`` as it is now with these rules and
+    options (``load_view``; ``shown``: its filters and ``top``), or None when none is saved."""
+    token = store.state_token()
+    if token is None:
+        return None
+    return load_view(store.derived_dir, key_of(store, token, ruleset, config, silent_hours), **shown)
+
+
+def load_view(home: Path, key: str, *, host: Sequence[str] = (), site: Sequence[str] = (),
+              group: Sequence[str] = (), severity: Sequence[str] = (), flagged_only: bool = False,
+              top: int | None = None) -> RankView | None:
+    """The rows a report shows of the ranking saved under ``key`` (filters as ``view.kept_rows``),
+    read from Arrow: the drives kept, the degraded groups and the drives not reporting (with no
+    ticket state: ``state`` not-reporting, no open flag). None when there is none or it cannot be
+    read. The same rows, values and order as ``view.view_of`` of the ranking ``load_ranking`` gives."""
+    folder = Path(home) / RANKINGS_DIR / key
+    try:
+        meta = json.loads((folder / META_FILE).read_text(encoding="utf-8"))
+        if meta.get("saved_version") != SAVED_VERSION:
+            return None
+        drives = pq.ParquetFile(folder / "drives.parquet")
+        if host or site or group or severity or flagged_only:
+            picked = drives.read(columns=["host", "group", "severity", "rules"] if flagged_only else
+                                 ["host", "group", "severity"])
+            kept = kept_rows(picked["host"].to_pylist(), picked["group"].to_pylist(), picked["severity"].to_pylist(),
+                             [len(r or ()) for r in picked["rules"].to_pylist()] if flagged_only else [],
+                             host=host, site=site, group=group, severity=severity, flagged_only=flagged_only, top=top)
+        else:
+            rows = drives.metadata.num_rows
+            kept = range(rows if top is None else min(top, rows))
+        groups = _read(folder / "groups.parquet")
+        degraded = ([i for i, lost in enumerate(groups["degraded"].to_pylist()) if lost]
+                    if "degraded" in groups.column_names else [])
+        silent = [dict(row, state="not-reporting", severity=None, first_raised=None)
+                  for row in _rows(_read(folder / "silent.parquet"))]
+        return RankView(_rows(_rows_at(drives, kept)), silent, _rows(_read(folder / "not_reporting.parquet")),
+                        _rows(_take(groups, degraded)),
+                        None if meta["as_of"] is None else datetime.fromisoformat(meta["as_of"]),
+                        meta["horizon_days"], bool(meta["model_used"]), list(meta["notes"]))
+    except (OSError, ValueError, KeyError, TypeError, pa.ArrowException):
+        return None
+
+
+# Reading a view keeps clear of three pyarrow calls that import pandas (half a second):
+# ``pq.read_table`` (it goes through pyarrow.dataset), ``pa.array`` (it looks for pandas objects)
+# and the Python value of a time with a zone name.
+def _read(path: Path) -> pa.Table:
+    """One Parquet file as Arrow."""
+    return pq.ParquetFile(path).read()
+
+
+def _rows_at(parquet: pq.ParquetFile, positions) -> pa.Table:
+    """The rows at ``positions`` of a Parquet file, decoding only the row groups that hold them."""
+    sizes = np.array([parquet.metadata.row_group(i).num_rows for i in range(parquet.num_row_groups)], dtype=np.int64)
+    first_row = np.concatenate([[0], np.cumsum(sizes)])  # of each group in the file
+    positions = np.asarray(positions, dtype=np.int64)
+    group_of = np.searchsorted(first_row, positions, side="right") - 1
+    wanted = np.unique(group_of)
+    table = parquet.read_row_groups(wanted.tolist()) if len(wanted) else parquet.schema_arrow.empty_table()
+    start_in_table = dict(zip(wanted.tolist(), np.concatenate([[0], np.cumsum(sizes[wanted])[:-1]]).tolist()))
+    return _take(table, [start_in_table[g] + p - first_row[g]
+                         for p, g in zip(positions.tolist(), group_of.tolist())])
+
+
+def _take(table: pa.Table, positions) -> pa.Table:
+    """The rows at ``positions``; the index array is built from its buffer."""
+    index = np.asarray(positions, dtype=np.int64)
+    return table.take(pa.Array.from_buffers(pa.int64(), len(index), [None, pa.py_buffer(index)]))
+
+
+def _rows(table: pa.Table) -> list[dict]:
+    """The rows as dicts of Python values, times (alone or in lists) as UTC ``datetime``s. Arrow
+    keeps a time as a count since the epoch in UTC, whatever its zone; that count is converted
+    here, because Arrow's own conversion imports pandas for a zone name or nanoseconds."""
+    columns = []
+    for column in table.columns:
+        kind = column.type
+        if pa.types.is_timestamp(kind):
+            columns.append([_time(v, kind.unit) for v in column.cast(pa.int64()).to_pylist()])
+        elif pa.types.is_list(kind) and pa.types.is_timestamp(kind.value_type):
+            unit = kind.value_type.unit
+            columns.append([None if row is None else [_time(v, unit) for v in row]
+                            for row in column.cast(pa.list_(pa.int64())).to_pylist()])
+        else:
+            columns.append(column.to_pylist())
+    return [dict(zip(table.column_names, values)) for values in zip(*columns)]
+
+
+_EPOCH = datetime(1970, 1, 1, tzinfo=timezone.utc)
+_PER_MICROSECOND = {"s": 1_000_000, "ms": 1_000, "us": 1}
+
+
+def _time(count: int | None, unit: str) -> datetime | None:
+    """A count of ``unit`` since the epoch as a UTC time (to the microsecond, as the store keeps)."""
+    if count is None:
+        return None
+    micros = count // 1_000 if unit == "ns" else count * _PER_MICROSECOND[unit]
+    return _EPOCH + timedelta(microseconds=micros)
+
+
 def last_inputs(home: Path) -> dict | None:
     """The ``inputs`` saved with the newest ranking, or None (none saved, or saved without)."""
     try:
@@ -177,6 +300,8 @@ def _to_table(frame: pd.DataFrame) -> tuple[pa.Table, dict]:
 
 
 def _to_frame(table: pa.Table, kinds: dict) -> pd.DataFrame:
+    import pandas as pd  # noqa: PLC0415  (whole frames only: see the module docstring)
+
     columns = {}
     for name, kind in kinds.items():
         values = table[name]

@@ -19,12 +19,16 @@ so the score orders them by model probability and group importance.
 
 from __future__ import annotations
 
-from typing import Iterable
+import math
+from datetime import datetime, timezone
+from typing import TYPE_CHECKING, Iterable
 
 import numpy as np
-import pandas as pd
 
 from triage.safety import name
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 #: Action tiers, most urgent first. "check-path" (cable, backplane, controller) comes before
 #: "watch": it is work to do tonight, even though it points away from the drive.
@@ -54,9 +58,21 @@ PATH_ONLY = "; do not pull the drive"
 PATH_BEFORE_SWAP = " before the swap, or the new drive goes onto the same bad path"
 
 
+def missing(value) -> bool:
+    """None, NaN, NaT or pandas' NA: a scalar that is not there. Without pandas, so that reading a
+    saved ranking never imports it: NaN and NaT are the only values unequal to themselves, and
+    NA's comparison has no truth value."""
+    if value is None:
+        return True
+    try:
+        return bool(value != value)  # noqa: PLR0124
+    except TypeError:
+        return True
+
+
 def severity_name(value) -> str | None:
     """Severity from the rules layer (enum or string) -> its string value, or None."""
-    if value is None or (isinstance(value, float) and pd.isna(value)):
+    if value is None or (isinstance(value, float) and math.isnan(value)):
         return None
     value = getattr(value, "value", value)
     return str(value)
@@ -77,8 +93,8 @@ def worst_severity(values) -> str | None:
 
 def risk_score(w_severity: float, p_fail: float | None, group_importance: float) -> float:
     """score = 1 - (1 - w) * (1 - p) * (1 - g); p = 0 when there is no model."""
-    p = 0.0 if p_fail is None or pd.isna(p_fail) else float(p_fail)
-    g = 0.0 if pd.isna(group_importance) else float(group_importance)
+    p = 0.0 if missing(p_fail) else float(p_fail)
+    g = 0.0 if missing(group_importance) else float(group_importance)
     return 1.0 - (1.0 - float(w_severity)) * (1.0 - p) * (1.0 - g)
 
 
@@ -140,13 +156,17 @@ def action_text(actions: list[str], caution: str | None = None) -> str:
 
 
 def _text(value) -> str:
-    return "?" if value is None or (isinstance(value, float) and pd.isna(value)) else name(value)
+    return "?" if value is None or (isinstance(value, float) and math.isnan(value)) else name(value)
 
 
 def moment_text(value) -> str:
-    """A capture time as the reports print it: ``2026-11-28 02:41 UTC``; "never" when missing."""
-    if value is None or pd.isna(value):
+    """A capture time as the reports print it: ``2026-11-28 02:41 UTC``; "never" when missing.
+    A time without a zone is UTC (the store keeps UTC)."""
+    if missing(value):
         return "never"
-    stamp = pd.Timestamp(value)
-    stamp = stamp.tz_convert("UTC") if stamp.tzinfo else stamp.tz_localize("UTC")
+    if not isinstance(value, datetime):  # a numpy datetime64 or a string: pandas reads every form
+        import pandas as pd  # noqa: PLC0415  (only for these forms)
+
+        value = pd.Timestamp(value)
+    stamp = value.astimezone(timezone.utc) if value.tzinfo else value.replace(tzinfo=timezone.utc)
     return stamp.strftime("%Y-%m-%d %H:%M UTC")

@@ -11,11 +11,23 @@ Public API (the risk layer builds on these names)::
 The language and the file schema are documented in docs/rules.md.
 """
 
-from triage.rules.engine import DRIVE_COLUMNS, FLAG_COLUMNS, DriveHistory, evaluate, per_drive
+from importlib import import_module
+
 from triage.rules.expr import ExprError, compile_expression
-from triage.rules.listing import RULE_LIST_COLUMNS, rules_table
 from triage.rules.loader import default_rules_dir, load_rules, resolve_rules_dirs
 from triage.rules.model import Category, Rule, RuleError, RuleSet, Severity
+
+#: Names from the modules that work on frames, imported on first use (PEP 562): loading rules
+#: needs no pandas, so 'triage rank' reading a saved ranking never imports it.
+_ON_FIRST_USE = {"DRIVE_COLUMNS": "engine", "FLAG_COLUMNS": "engine", "DriveHistory": "engine",
+                 "evaluate": "engine", "per_drive": "engine", "RULE_LIST_COLUMNS": "listing",
+                 "rules_table": "listing"}
+
+
+def __getattr__(attribute: str):
+    if attribute in _ON_FIRST_USE:
+        return getattr(import_module(f"triage.rules.{_ON_FIRST_USE[attribute]}"), attribute)
+    raise AttributeError(f"module 'triage.rules' has no attribute {attribute!r}")
 
 __all__ = [
     "Category",

@@ -52,19 +52,24 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta, timezone
 from pathlib import Path
-from typing import Callable, Iterable, Iterator, Mapping, Sequence
+from typing import TYPE_CHECKING, Callable, Iterable, Iterator, Mapping, Sequence
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
 from triage.store import current
 from triage.store.files import fsync_dir as _fsync_dir
 from triage.store.files import fsync_file as _fsync_file
 from triage.store.schema import PARTITION_COLUMN, RENAMED_SINCE, STORE_FORMAT, TABLES
+
+if TYPE_CHECKING:
+    import pandas as pd
+
+# pandas, and pyarrow.dataset (which imports pandas), are imported by the methods that read
+# partitions or take frames: opening a store and reading a saved ranking ('triage rank') never
+# pay their half a second of import.
 
 MANIFEST = "_manifest.jsonl"
 FORMAT_FILE = "_format.json"
@@ -480,6 +485,8 @@ class Store:
 
     def _drop_stored(self, table: str, day: str, rows: pa.Table, key) -> pa.Table:
         """``rows`` without those whose key is already stored in that day's partition."""
+        import pyarrow.dataset as ds  # noqa: PLC0415  (see the imports above)
+
         files = self._committed_parts(table, day)
         if not files:
             return rows
@@ -517,6 +524,8 @@ class Store:
         with NaN (pandas' default), booleans holding nulls as object. ``as_table``: the Arrow
         table instead, in the table's schema.
         """
+        import pyarrow.dataset as ds  # noqa: PLC0415  (see the imports above)
+
         schema, time_column, _ = TABLES[table]
         self.upgrade()
         wanted = list(columns) if columns is not None else schema.names
@@ -550,6 +559,8 @@ class Store:
     def last_times(self, table: str, key: str) -> pd.DataFrame:
         """The newest time of every ``key`` value over the table's whole history (two columns read;
         whole commits and the sane date window only, as ``read``)."""
+        import pyarrow.dataset as ds  # noqa: PLC0415  (see the imports above)
+
         schema, time_column, _ = TABLES[table]
         self.upgrade()
         low, high = self._sane_window()
@@ -568,6 +579,8 @@ class Store:
         ``last``: the rows of ``last_times`` wanted (default: every key). Only the days on which
         those keys were last seen are opened.
         """
+        import pandas as pd  # noqa: PLC0415  (see the imports above)
+
         _, time_column, _ = TABLES[table]
         wanted = list(dict.fromkeys([key, time_column, *columns]))
         if last is None:
@@ -697,6 +710,8 @@ def _last_per_key(rows: pa.Table, key: list[str]) -> pa.Table:
 
 def to_arrow(frame: pd.DataFrame, schema: pa.Schema) -> pa.Table:
     """Frame -> table of exactly ``schema``; missing columns become nulls, extra ones are dropped."""
+    import pandas as pd  # noqa: PLC0415  (see the imports at the top)
+
     arrays = []
     for field in schema:
         if field.name in frame.columns:
