@@ -15,8 +15,12 @@ same run:
 
   * ``old``   -- the same command from the code before the current-state table (``--old REV``,
                  default the commit this work started from), which scans the day partitions;
+  * ``start`` -- a fresh process that imports the command line (what no command can avoid);
   * ``floor`` -- a fresh process that imports the command line and reads the state's files
-                 (what no ranking can avoid).
+                 (what no ranking computed afresh can avoid).
+
+A filtered rank (``--site ash --severity replace-soon``) is measured too: it reads the filter
+columns of every saved row rather than the first rows only.
 
 The 1,000,000-drive store (``--million``) is written directly as a current-state table (the
 recent window of 9 nights and every drive's sighting), with no partitions behind it.
@@ -105,8 +109,12 @@ def measure(argv: list[str], env: dict | None = None, runs: int = RUNS, before=N
 ENTRY = "import sys; from triage.cli import main; sys.argv[0] = 'triage'; sys.exit(main())"
 
 
-def rank_argv(python: str, root: Path) -> list[str]:
-    return [python, "-c", ENTRY, "rank", "--store", str(root), "--top", "25", "--format", "csv"]
+def rank_argv(python: str, root: Path, *filters: str) -> list[str]:
+    return [python, "-c", ENTRY, "rank", "--store", str(root), "--top", "25", "--format", "csv", *filters]
+
+
+#: A filter on-call types: one site's drives of one tier.
+FILTERED = ("--site", "ash", "--severity", "replace-soon")
 
 
 def forget_rankings(root: Path) -> None:
@@ -250,6 +258,8 @@ def main() -> None:
 
         print(f"machine: {os.cpu_count()} cores visible; load {os.getloadavg()[0]:.1f}; median of {RUNS} runs")
         old_env = old_code(args.old, work / "old-code")
+        start = measure([python, "-c", "import triage.cli"])
+        print(f"start (a fresh process importing the command line): {start['seconds']:.2f} s, {start['peak_mb']:.0f} MB")
         figures = {}
         for label in stores:
             root = work / label.replace(" ", "")
@@ -257,10 +267,12 @@ def main() -> None:
             rebuild = run(rank_argv(python, root))  # the first rank builds the state from the history
             run(rank_argv(python, root))  # ... and the second, with a state to name it by, saves its ranking
             figures[label] = new = measure(rank_argv(python, root))  # the night's ranking, saved by the run above
+            filtered = measure(rank_argv(python, root, *FILTERED))
             computed = measure(rank_argv(python, root), before=lambda: forget_rankings(root))
             figures[label]["computed"] = computed
             floor = measure([python, "-c", FLOOR, str(root)])
             line = (f"{label:>11}: rank {new['seconds']:.2f} s ({new['cpu']:.2f} s CPU), {new['peak_mb']:.0f} MB | "
+                    f"filtered {filtered['seconds']:.2f} s, {filtered['peak_mb']:.0f} MB | "
                     f"computed (no saved ranking) {computed['seconds']:.2f} s ({computed['cpu']:.2f} s CPU), "
                     f"{computed['peak_mb']:.0f} MB | floor (import + read the "
                     f"state) {floor['seconds']:.2f} s ({floor['cpu']:.2f} s CPU), {floor['peak_mb']:.0f} MB | first rank, state built from "
