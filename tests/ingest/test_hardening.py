@@ -175,6 +175,16 @@ def test_a_folder_with_nothing_readable_is_said_and_exits_non_zero(tmp_path):
     assert "no capture file" in result.output and str(folder) in result.output
 
 
+@pytest.mark.parametrize("named", ["missing.jsonl", "notes.txt"])
+def test_a_mistyped_input_is_one_line_and_creates_no_store(tmp_path, named):
+    (tmp_path / "notes.txt").write_text("not a capture\n")
+    root = tmp_path / "new-store"
+    result = CliRunner().invoke(app, ["ingest", str(tmp_path / named), "--store", str(root)])
+    assert result.exit_code == Exit.USAGE
+    assert len(result.stderr.strip().splitlines()) == 1 and named in result.stderr
+    assert not root.exists()  # not even an empty folder holding a lock file
+
+
 # -- damaged files -----------------------------------------------------------------------------
 
 def test_a_corrupted_gzip_member_keeps_the_lines_before_the_damage(tmp_path):

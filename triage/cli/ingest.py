@@ -46,7 +46,13 @@ def ingest(
     from triage.report.console import progress_bar
     from triage.store.dataset import StoreLocked
 
-    # the engine first: a scheduler that cannot be reached stops the run before the store is touched
+    from triage.ingest.run import check_named_inputs
+
+    try:  # a mistyped path stops the run before a store is created for it
+        check_named_inputs(paths)
+    except (FileNotFoundError, ValueError) as exc:
+        fail(str(exc), Exit.USAGE)
+    # the engine next: a scheduler that cannot be reached stops the run before the store is touched
     runner = open_engine_options(engine, scheduler)
     try:
         target = open_store(store, create=True)  # the one command that may create a store

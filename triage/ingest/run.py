@@ -67,13 +67,26 @@ def find_inputs(paths: Iterable[Path], empty: list[str] | None = None) -> list[P
                 empty.append(f"{display_name(path)}: no capture file (.jsonl, .jsonl.gz) or removal log "
                              "(.csv) in this folder (names compared without case; hidden files left out)")
             found += inside
-        elif path.is_file():
-            if not _kind(path):
-                raise ValueError(f"{display_name(path)}: not a capture file (.jsonl, .jsonl.gz) or removal log (.csv)")
-            found.append(path)
         else:
-            raise FileNotFoundError(f"{display_name(path)}: no such file or directory")
+            found.append(_named_file(path))
     return found
+
+
+def check_named_inputs(paths: Iterable[Path]) -> None:
+    """Raise as ``find_inputs`` would for a named path that does not exist or is not an input
+    file, without listing folders: the command line checks its arguments before it opens (or
+    creates) the store, so a mistyped path leaves nothing behind."""
+    for path in paths:
+        if not path.is_dir():
+            _named_file(path)
+
+
+def _named_file(path: Path) -> Path:
+    if not path.is_file():
+        raise FileNotFoundError(f"{display_name(path)}: no such file or directory")
+    if not _kind(path):
+        raise ValueError(f"{display_name(path)}: not a capture file (.jsonl, .jsonl.gz) or removal log (.csv)")
+    return path
 
 
 def _kind(path: Path) -> str | None:
