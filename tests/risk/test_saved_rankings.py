@@ -127,17 +127,32 @@ def test_a_changed_input_misses(store, tmp_path, monkeypatch, change):
     elif change == "refit":
         model = saved_model_dir(store)
         shutil.copytree(model, model.parent / model.name.replace("-v1-", "-v2-"))
-    elif change == "code":
-        source = Path(saved.__file__)
-        info = source.stat()
-        os.utime(source, ns=(info.st_atime_ns, info.st_mtime_ns + 1_000_000_000))
-        monkeypatch.setattr(saved, "__file__", str(source))  # the same file, now newer
+    elif change == "code":  # an upgrade: another source file (test_the_code_stamp_... shows what changes it)
+        stamp = saved._code_stamp()
+        monkeypatch.setattr(saved, "_code_stamp", lambda: [*stamp, ("added.py", 1, 1)])
     fresh = rank_store(store, ruleset, config=config, silent_hours=hours)
     got = rank_store(store, ruleset, config=config, silent_hours=hours, reuse=True)
     assert_same_ranking(got, fresh)
     assert len(saved_keys(store)) == 2  # computed and saved under a key of its own
-    if change == "code":
-        os.utime(source, ns=(info.st_atime_ns, info.st_mtime_ns))
+
+
+def test_the_code_stamp_follows_each_source_files_size_and_time(tmp_path):
+    # a copy of a package, not the installed one: tests running beside this one read its stamp
+    package = tmp_path / "package"
+    (package / "sub").mkdir(parents=True)
+    source = package / "sub" / "module.py"
+    source.write_text("x = 1\n")
+    (package / "notes.txt").write_text("not source\n")
+    first = saved._code_stamp(package)
+    info = source.stat()
+    os.utime(source, ns=(info.st_atime_ns, info.st_mtime_ns + 1_000_000_000))
+    touched = saved._code_stamp(package)
+    source.write_text("x = 10\n")
+    os.utime(source, ns=(info.st_atime_ns, info.st_mtime_ns + 1_000_000_000))
+    edited = saved._code_stamp(package)
+    (package / "notes.txt").write_text("still not source, now longer\n")
+    assert len({repr(first), repr(touched), repr(edited)}) == 3
+    assert saved._code_stamp(package) == edited
 
 
 def saved_model_dir(store: Store) -> Path:

@@ -91,9 +91,12 @@ def ranking_key(state_token: str, ruleset, config, silent_hours: float, model_di
     return hashlib.sha256(json.dumps(parts, sort_keys=True, default=str).encode()).hexdigest()[:40]
 
 
-def _code_stamp() -> list:
-    """Size and modification time of every source file of the installed package."""
-    package = Path(__file__).resolve().parent.parent
+#: The installed package's folder, whose source files ``_code_stamp`` reads.
+PACKAGE = Path(__file__).resolve().parent.parent
+
+
+def _code_stamp(package: Path = PACKAGE) -> list:
+    """Size and modification time of every source file of the package in ``package``."""
     stamp = []
     for folder, _, files in os.walk(package):
         for name in sorted(files):
