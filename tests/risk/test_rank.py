@@ -10,7 +10,7 @@ import pytest
 
 from triage.risk.groups import GroupConfig
 from triage.risk.rank import filter_ranked, rank_drives
-from triage.risk.view import site_of
+from triage.risk.view import RowFilter, site_of
 from triage.risk.score import risk_score
 
 
@@ -81,13 +81,13 @@ def test_filters_combine_host_site_group_severity_and_top():
                       ("C", "m", "ash-2", "1", "gc", 1)])
     flags = _flags([("A", "r", "watch", "media", "t", "e"), ("C", "r", "replace-now", "media", "t", "e")])
     drives, _ = rank_drives(latest, flags, None)
-    assert list(filter_ranked(drives, site=["ash"])["serial"]) == ["C", "A"]
-    assert list(filter_ranked(drives, host=["ash-1"])["serial"]) == ["A"]
-    assert list(filter_ranked(drives, group=["g[bc]"])["serial"]) == ["C", "B"]
-    assert list(filter_ranked(drives, severity=["watch"])["serial"]) == ["A"]
-    assert list(filter_ranked(drives, top=1)["serial"]) == ["C"]
+    assert list(filter_ranked(drives, RowFilter(site=["ash"]))["serial"]) == ["C", "A"]
+    assert list(filter_ranked(drives, RowFilter(host=["ash-1"]))["serial"]) == ["A"]
+    assert list(filter_ranked(drives, RowFilter(group=["g[bc]"]))["serial"]) == ["C", "B"]
+    assert list(filter_ranked(drives, RowFilter(severity=["watch"]))["serial"]) == ["A"]
+    assert list(filter_ranked(drives, RowFilter(top=1))["serial"]) == ["C"]
     with pytest.raises(ValueError, match="unknown severity"):
-        filter_ranked(drives, severity=["urgent"])
+        filter_ranked(drives, RowFilter(severity=["urgent"]))
 
 
 def test_site_is_the_host_name_prefix():

@@ -20,7 +20,7 @@ from triage.cli import app
 from triage.risk import rank as rank_module
 from triage.risk import saved
 from triage.risk.score import missing, moment_text
-from triage.risk.view import kept_rows, plain
+from triage.risk.view import RowFilter, plain
 from triage.store.dataset import Store
 
 runner = CliRunner()
@@ -100,18 +100,18 @@ def test_a_corrupt_saved_ranking_is_computed_and_replaced(store):
     assert (key / "drives.parquet").read_bytes()[:4] == b"PAR1"  # replaced by the ranking computed
 
 
-def test_kept_rows_matches_patterns_once_per_distinct_value():
+def test_a_row_filter_keeps_drives_matching_every_filter_in_rank_order():
     hosts = ["ash-r1-n01", "ash-r1-n02", "elm-r1-n01", None, "ash-r1-n01"]
     groups = ["g1", "g2", None, "g1", "g3"]
     severities = ["watch", None, "replace-now", "watch", "check-path"]
     counts = [1, 0, 2, 1, 1]
-    assert kept_rows(hosts, groups, severities, counts) == [0, 1, 2, 3, 4]
-    assert kept_rows(hosts, groups, severities, counts, site=["ash"]) == [0, 1, 4]
-    assert kept_rows(hosts, groups, severities, counts, host=["*n01"], group=["g[13]"]) == [0, 4]
-    assert kept_rows(hosts, groups, severities, counts, severity=["watch"], top=1) == [0]
-    assert kept_rows(hosts, groups, severities, counts, flagged_only=True) == [0, 2, 3, 4]
+    assert RowFilter().kept(hosts, groups, severities) == [0, 1, 2, 3, 4]
+    assert RowFilter(site=["ash"]).kept(hosts, groups, severities) == [0, 1, 4]
+    assert RowFilter(host=["*n01"], group=["g[13]"]).kept(hosts, groups, severities) == [0, 4]
+    assert RowFilter(severity=["watch"], top=1).kept(hosts, groups, severities) == [0]
+    assert RowFilter(flagged_only=True).kept(hosts, groups, severities, counts) == [0, 2, 3, 4]
     with pytest.raises(ValueError, match="unknown severity"):
-        kept_rows(hosts, groups, severities, counts, severity=["soonish"])
+        RowFilter(severity=["soonish"])
 
 
 def test_plain_values_are_the_same_from_pandas_and_from_arrow():

@@ -187,7 +187,7 @@ def demo(
     from triage.report.rank import render_ranked
     from triage.risk.nightly import run_nightly
     from triage.risk.rank import filter_ranked
-    from triage.risk.view import view_of
+    from triage.risk.view import RowFilter, view_of
     from triage.store.dataset import Store
 
     spec = FleetSpec(seed=seed, n_drives=drives, days=days)
@@ -209,7 +209,7 @@ def demo(
             log=lambda line: say(f"demo: {line}"), stale_hours=None)
     say(report.summary())
     result = report.result
-    view = view_of(result, filter_ranked(result.drives, flagged_only=True, top=top))
+    view = view_of(result, filter_ranked(result.drives, RowFilter(flagged_only=True, top=top)))
     _print_cautions(view)
     render_ranked(view, fmt, report.silence)
     say(f"demo: tickets in {folder.tickets}; explore with: triage cohorts --store {folder.store}, "

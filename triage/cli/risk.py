@@ -164,22 +164,22 @@ def rank(
     or the data is stale, 1 failure (a missing store)."""
     from triage.report.rank import render_ranked
     from triage.risk.saved import saved_view
-    from triage.risk.view import silence_lines
+    from triage.risk.view import RowFilter, silence_lines
 
     target = open_store(store)
     ruleset, config = _risk_inputs(rules, no_default_rules, group_config)
-    filters = {"host": host or (), "site": site or (), "group": group or (),
-               "severity": [s.value for s in severity or ()], "top": top}
+    shown = RowFilter(host=host or (), site=site or (), group=group or (),
+                      severity=[s.value for s in severity or ()], top=top)
     # the saved ranking's rows straight from Arrow when there is one (no pandas: the common case
     # answers in well under a second at 100k drives); ticket states need the whole ranking
-    view = saved_view(target, ruleset, config, stale_hours, **filters) if tickets is None else None
+    view = saved_view(target, ruleset, config, stale_hours, shown) if tickets is None else None
     if view is None:
         from triage.risk.rank import filter_ranked
         from triage.risk.view import view_of
 
         result = _rank(target, ruleset, config, tickets, stale_hours,
                        _inputs_record(rules, no_default_rules, group_config, stale_hours))
-        view = view_of(result, filter_ranked(result.drives, **filters))
+        view = view_of(result, filter_ranked(result.drives, shown))
     warnings = silence_lines(view.as_of, view.not_reporting, stale_hours=stale_hours)
     _print_notes(view.notes)
     _print_cautions(view)

@@ -10,7 +10,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timedelta
 from pathlib import Path
-from typing import Callable, Sequence
+from typing import Callable
 
 import numpy as np
 import pandas as pd
@@ -34,7 +34,7 @@ from triage.risk.score import (
     severity_name,
     tier_index,
 )
-from triage.risk.view import STALE_HOURS, kept_rows, silence_lines, site_of
+from triage.risk.view import STALE_HOURS, RowFilter, silence_lines, site_of
 from triage.store.current import RECENT_DAYS, window_start
 from triage.store.dataset import EARLIEST_DAY
 
@@ -214,22 +214,11 @@ def _first_in_degraded_group(drives: pd.DataFrame, groups: pd.DataFrame) -> tupl
     return positions, notes
 
 
-def filter_ranked(
-    drives: pd.DataFrame,
-    *,
-    host: Sequence[str] = (),
-    site: Sequence[str] = (),
-    group: Sequence[str] = (),
-    severity: Sequence[str] = (),
-    flagged_only: bool = False,
-    top: int | None = None,
-) -> pd.DataFrame:
-    """Keep drives matching every given filter (``view.kept_rows``: fnmatch patterns, any pattern
-    of a list may match)."""
-    kept = kept_rows(drives["host"].tolist(), drives["group"].tolist(), drives["severity"].tolist(),
-                     [len(r) for r in drives["rules"]] if flagged_only else [], host=host, site=site, group=group,
-                     severity=severity, flagged_only=flagged_only, top=top)
-    return drives.iloc[kept]
+def filter_ranked(drives: pd.DataFrame, shown: RowFilter) -> pd.DataFrame:
+    """The ranked drives ``shown`` keeps (``view.RowFilter``), in rank order."""
+    counts = [len(r) for r in drives["rules"]] if shown.flagged_only else []
+    return drives.iloc[shown.kept(drives["host"].tolist(), drives["group"].tolist(), drives["severity"].tolist(),
+                                  counts)]
 
 
 _AUTO = object()

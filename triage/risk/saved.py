@@ -33,14 +33,14 @@ import shutil
 from dataclasses import replace
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
-from typing import TYPE_CHECKING, Sequence
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
 from triage.risk.group_config import GroupConfig
-from triage.risk.view import RankView, kept_rows
+from triage.risk.view import RankView, RowFilter
 from triage.store.files import fsync_dir, fsync_file
 from triage.store.models import latest_model_dir
 
@@ -173,37 +173,36 @@ def load_ranking(home: Path, key: str, empty):
             gc.enable()
 
 
-def saved_view(store, ruleset, config: GroupConfig | None, silent_hours: float, **shown) -> RankView | None:
-    """What the report shows of the ranking saved for ``store`` as it is now with these rules and
-    options (``load_view``; ``shown``: its filters and ``top``), or None when none is saved."""
+def saved_view(store, ruleset, config: GroupConfig | None, silent_hours: float,
+               shown: RowFilter = RowFilter()) -> RankView | None:
+    """What the report shows (``shown``) of the ranking saved for ``store`` as it is now with
+    these rules and options (``load_view``), or None when none is saved."""
     token = store.state_token()
     if token is None:
         return None
-    return load_view(store.derived_dir, key_of(store, token, ruleset, config, silent_hours), **shown)
+    return load_view(store.derived_dir, key_of(store, token, ruleset, config, silent_hours), shown)
 
 
-def load_view(home: Path, key: str, *, host: Sequence[str] = (), site: Sequence[str] = (),
-              group: Sequence[str] = (), severity: Sequence[str] = (), flagged_only: bool = False,
-              top: int | None = None) -> RankView | None:
-    """The rows a report shows of the ranking saved under ``key`` (filters as ``view.kept_rows``),
-    read from Arrow: the drives kept, the degraded groups and the drives not reporting (with no
-    ticket state: ``state`` not-reporting, no open flag). None when there is none or it cannot be
-    read. The same rows, values and order as ``view.view_of`` of the ranking ``load_ranking`` gives."""
+def load_view(home: Path, key: str, shown: RowFilter = RowFilter()) -> RankView | None:
+    """The rows a report shows (``shown``) of the ranking saved under ``key``, read from Arrow:
+    the drives kept, the degraded groups and the drives not reporting (with no ticket state:
+    ``state`` not-reporting, no open flag). None when there is none or it cannot be read. The
+    same rows, values and order as ``view.view_of`` of the ranking ``load_ranking`` gives."""
     folder = Path(home) / RANKINGS_DIR / key
     try:
         meta = json.loads((folder / META_FILE).read_text(encoding="utf-8"))
         if meta.get("saved_version") != SAVED_VERSION:
             return None
         drives = pq.ParquetFile(folder / "drives.parquet")
-        if host or site or group or severity or flagged_only:
-            picked = drives.read(columns=["host", "group", "severity", "rules"] if flagged_only else
+        if shown.selects:  # the filter columns of every drive
+            picked = drives.read(columns=["host", "group", "severity", "rules"] if shown.flagged_only else
                                  ["host", "group", "severity"])
-            kept = kept_rows(picked["host"].to_pylist(), picked["group"].to_pylist(), picked["severity"].to_pylist(),
-                             [len(r or ()) for r in picked["rules"].to_pylist()] if flagged_only else [],
-                             host=host, site=site, group=group, severity=severity, flagged_only=flagged_only, top=top)
+            counts = [len(r or ()) for r in picked["rules"].to_pylist()] if shown.flagged_only else []
+            kept = shown.kept(picked["host"].to_pylist(), picked["group"].to_pylist(), picked["severity"].to_pylist(),
+                              counts)
         else:
             rows = drives.metadata.num_rows
-            kept = range(rows if top is None else min(top, rows))
+            kept = range(rows if shown.top is None else min(shown.top, rows))
         groups = _read(folder / "groups.parquet")
         degraded = ([i for i, lost in enumerate(groups["degraded"].to_pylist()) if lost]
                     if "degraded" in groups.column_names else [])

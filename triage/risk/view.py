@@ -4,7 +4,7 @@ hosts and groups to warn about, and the time of the newest data.
 A ``RankView`` is made from a computed ranking (``view_of``) or read straight from a saved one
 (``triage.risk.saved.load_view``). The second way needs neither pandas nor the whole ranking in
 memory, which is what lets ``triage rank`` answer at 100k drives in well under a second. Both go
-through ``kept_rows`` and ``silence_lines`` here, so a saved ranking and a computed one show the
+through ``RowFilter`` and ``silence_lines`` here, so a saved ranking and a computed one show the
 same rows and the same warnings. Nothing in this module imports pandas.
 """
 
@@ -72,46 +72,55 @@ def site_of(host) -> str | None:
     return host
 
 
-def kept_rows(
-    hosts: Sequence,
-    groups: Sequence,
-    severities: Sequence,
-    rule_counts: Sequence[int],
-    *,
-    host: Sequence[str] = (),
-    site: Sequence[str] = (),
-    group: Sequence[str] = (),
-    severity: Sequence[str] = (),
-    flagged_only: bool = False,
-    top: int | None = None,
-) -> list[int]:
-    """Positions of the drives that match every given filter, in order, at most ``top``: fnmatch
-    patterns on host, site (``site_of``) and group, any pattern of a list matching; ``severity``
-    the action tiers kept; ``flagged_only`` drops drives no rule flagged (``rule_counts`` 0)."""
-    unknown = set(severity) - set(SEVERITIES)
-    if unknown:
-        raise ValueError(f"unknown severity {', '.join(sorted(unknown))}; use one of {', '.join(SEVERITIES)}")
+@dataclass(frozen=True)
+class RowFilter:
+    """Which ranked drives a report shows: those matching every filter given, in rank order, at
+    most ``top``. ``host``, ``site`` (``site_of``) and ``group``: fnmatch patterns, any pattern
+    of a list matching; ``severity``: the action tiers kept; ``flagged_only``: drop drives no rule
+    flagged."""
 
-    def test(values: Sequence, patterns: Sequence[str], key=lambda v: v) -> list[bool]:
-        # each distinct value matched once: a fleet has 100,000s of drives but few hosts and groups
-        verdict = {v: isinstance(key(v), str) and any(fnmatch.fnmatchcase(key(v), p) for p in patterns)
-                   for v in set(values)}
-        return [verdict[v] for v in values]
+    host: Sequence[str] = ()
+    site: Sequence[str] = ()
+    group: Sequence[str] = ()
+    severity: Sequence[str] = ()
+    flagged_only: bool = False
+    top: int | None = None
 
-    tests = []
-    if host:
-        tests.append(test(hosts, host))
-    if site:
-        tests.append(test(hosts, site, site_of))
-    if group:
-        tests.append(test(groups, group))
-    if severity:
-        wanted = set(severity)
-        tests.append([s in wanted for s in severities])
-    if flagged_only:
-        tests.append([count > 0 for count in rule_counts])
-    kept = [i for i, passes in enumerate(zip(*tests)) if all(passes)] if tests else range(len(hosts))
-    return list(kept[:top] if top is not None else kept)
+    def __post_init__(self) -> None:
+        unknown = set(self.severity) - set(SEVERITIES)
+        if unknown:
+            raise ValueError(f"unknown severity {', '.join(sorted(unknown))}; use one of {', '.join(SEVERITIES)}")
+
+    @property
+    def selects(self) -> bool:
+        """True when a filter besides ``top`` is given (every drive must then be looked at)."""
+        return bool(self.host or self.site or self.group or self.severity or self.flagged_only)
+
+    def kept(self, hosts: Sequence, groups: Sequence, severities: Sequence,
+             rule_counts: Sequence[int] = ()) -> list[int]:
+        """Positions of the drives kept, given each drive's host, group, tier and number of rules
+        fired (read only with ``flagged_only``)."""
+
+        def test(values: Sequence, patterns: Sequence[str], key=lambda v: v) -> list[bool]:
+            # each distinct value matched once: a fleet has 100,000s of drives but few hosts and groups
+            verdict = {v: isinstance(key(v), str) and any(fnmatch.fnmatchcase(key(v), p) for p in patterns)
+                       for v in set(values)}
+            return [verdict[v] for v in values]
+
+        tests = []
+        if self.host:
+            tests.append(test(hosts, self.host))
+        if self.site:
+            tests.append(test(hosts, self.site, site_of))
+        if self.group:
+            tests.append(test(groups, self.group))
+        if self.severity:
+            wanted = set(self.severity)
+            tests.append([s in wanted for s in severities])
+        if self.flagged_only:
+            tests.append([count > 0 for count in rule_counts])
+        kept = [i for i, passes in enumerate(zip(*tests)) if all(passes)] if tests else range(len(hosts))
+        return list(kept[:self.top] if self.top is not None else kept)
 
 
 def data_age_hours(as_of: datetime | None, now: datetime | None = None) -> float | None:
