@@ -36,17 +36,14 @@ class RankView:
 
 
 def plain(value):
-    """A stored value as plain Python: None for every kind of missing, ``.item()`` of numpy
-    scalars, lists item by item; times stay times (``pd.Timestamp`` is a ``datetime``)."""
+    """A stored value as plain Python: None for every kind of missing, numpy scalars and arrays
+    (``tolist``) as Python values, lists item by item; times stay times (``pd.Timestamp`` is a
+    ``datetime``)."""
     if isinstance(value, (list, tuple)):
         return [plain(v) for v in value]
-    if hasattr(value, "tolist") and not isinstance(value, datetime):  # a numpy array of a list column
+    if hasattr(value, "tolist") and not isinstance(value, datetime):  # numpy: a scalar, or a list column's array
         return plain(value.tolist())
-    if missing(value):
-        return None
-    if hasattr(value, "item") and not isinstance(value, datetime):
-        return value.item()
-    return value
+    return None if missing(value) else value
 
 
 def rows_of(frame) -> list[dict]:
