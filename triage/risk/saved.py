@@ -160,9 +160,9 @@ def load_ranking(home: Path, key: str, empty):
         meta = json.loads((folder / META_FILE).read_text(encoding="utf-8"))
         if meta.get("saved_version") != SAVED_VERSION:
             return None
-        frames = {name: _to_frame(pq.read_table(folder / f"{name}.parquet"), meta["kinds"][name])
+        frames = {name: _to_frame(_read(folder / f"{name}.parquet"), meta["kinds"][name])
                   for name in FRAMES}
-        removed = frozenset(pq.read_table(folder / "removed.parquet")["serial"].to_pylist())
+        removed = frozenset(_read(folder / "removed.parquet")["serial"].to_pylist())
         as_of = None if meta["as_of"] is None else datetime.fromisoformat(meta["as_of"])
         return replace(empty, model_used=meta["model_used"], horizon_days=meta["horizon_days"], as_of=as_of,
                        notes=list(meta["notes"]), removed=removed, **frames)
