@@ -124,19 +124,15 @@ def member_probabilities(p_fail: pd.Series, severity: pd.Series, group: pd.Serie
                          config: "GroupConfig") -> list[float]:
     """``member_probability`` of many drives: each drive's ``p_fail`` over the horizon rescaled to
     its group's rebuild window (``window_probability``; none without a model, a horizon or a
-    group), combined with its severity's prior. Same arithmetic as one drive at a time."""
+    group), combined with its severity's prior. The group configuration is looked up once per
+    group, not once per drive."""
     rebuild_days = {g: config.for_group(g).rebuild_hours / 24.0 for g in pd.unique(group) if isinstance(g, str)}
     if horizon_days is not None and horizon_days <= 0:
         raise ValueError(f"horizon_days must be positive, got {horizon_days}")
-    out = []
-    for p, s, g in zip(p_fail.tolist(), severity.tolist(), group.tolist()):
-        prior = SEVERITY_REBUILD_PRIOR.get(s, 0.0)
-        if horizon_days and p == p and p is not None and isinstance(g, str):  # p == p: not NaN
-            p_window = 1.0 - (1.0 - float(p)) ** (rebuild_days[g] / horizon_days)  # window_probability
-            out.append(1.0 - (1.0 - p_window) * (1.0 - prior))  # member_probability
-        else:
-            out.append(1.0 - (1.0 - 0.0) * (1.0 - prior))
-    return out
+    return [member_probability(window_probability(p, horizon_days, rebuild_days[g])
+                               if horizon_days and p is not None and p == p and isinstance(g, str) else None,  # p == p: not NaN
+                               s)
+            for p, s, g in zip(p_fail.tolist(), severity.tolist(), group.tolist())]
 
 
 # -- degraded groups --------------------------------------------------------------------------
